@@ -1,0 +1,125 @@
+"""The cheap proxy models that the score stage cross-fits: LightGBM or SGD logistic regression.
+
+Each fit reports the per-row logits of its own training rows at every checkpoint through a
+callback, so that the score stage can accumulate training dynamics without storing them.
+Logits are always an (n, n_classes) array; for LightGBM they are log-probabilities read from the
+booster's own running training scores (no extra prediction pass). Softmax is shift-invariant, so
+their margins and probabilities equal those of the raw scores.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any
+
+import lightgbm as lgb
+import numpy as np
+from sklearn.compose import ColumnTransformer
+from sklearn.impute import SimpleImputer
+from sklearn.linear_model import SGDClassifier
+from sklearn.pipeline import make_pipeline
+from sklearn.preprocessing import OneHotEncoder, StandardScaler
+
+from .config import ProxyConfig
+
+Checkpoint = Callable[[int, np.ndarray], None]
+_EPS = 1e-300
+
+GBDT_DEFAULTS: dict[str, Any] = {
+    "learning_rate": 0.1, "num_leaves": 15, "min_data_in_leaf": 20,
+    "verbose": -1, "deterministic": True, "force_col_wise": True,
+}
+
+
+def softmax(logits: np.ndarray) -> np.ndarray:
+    """Row-wise softmax of an (n, k) array, computed stably."""
+    z = logits - logits.max(axis=1, keepdims=True)
+    np.exp(z, out=z)
+    z /= z.sum(axis=1, keepdims=True)
+    return z
+
+
+def _as_matrix(p: np.ndarray) -> np.ndarray:
+    return np.column_stack((1.0 - p, p)) if p.ndim == 1 else p
+
+
+def _two_column(z: np.ndarray) -> np.ndarray:
+    """Binary decision values z as logits [0, z]; multiclass values unchanged."""
+    return np.column_stack((np.zeros_like(z), z)) if z.ndim == 1 else z
+
+
+@dataclass
+class FittedProxy:
+    """One fold's proxy: predicts class probabilities and serialises without pickling."""
+
+    family: str
+    model: Any
+
+    def predict_proba(self, X: np.ndarray) -> np.ndarray:
+        """Class probabilities, shape (n, n_classes)."""
+        if self.family == "gbdt":
+            return _as_matrix(self.model.predict(X))
+        return softmax(_linear_logits(self.model, X))
+
+    def to_text(self) -> str:
+        """LightGBM's text model format, or the linear model's coefficients as JSON."""
+        if self.family == "gbdt":
+            return self.model.model_to_string()
+        sgd = self.model[-1]
+        return json.dumps({"coef": sgd.coef_.tolist(), "intercept": sgd.intercept_.tolist(), "classes": sgd.classes_.tolist()})
+
+
+def fit_gbdt(X, y, n_classes, categorical, config: ProxyConfig, seed: int, on_checkpoint: Checkpoint) -> FittedProxy:
+    """Fit LightGBM for ``config.rounds`` rounds, reporting logits every ``checkpoint_every`` rounds."""
+    params = {**GBDT_DEFAULTS, **config.params, "seed": seed}
+    params.update({"objective": "multiclass", "num_class": n_classes} if n_classes > 2 else {"objective": "binary"})
+    data = lgb.Dataset(X, label=y, categorical_feature=categorical or "auto", free_raw_data=True)
+    t = 0
+
+    def record(env: lgb.callback.CallbackEnv) -> None:
+        nonlocal t
+        if (env.iteration + 1) % config.checkpoint_every == 0:
+            t += 1
+            p = _as_matrix(np.array(env.model._Booster__inner_predict(0), dtype=np.float64))
+            on_checkpoint(t, np.log(np.maximum(p, _EPS)))
+
+    booster = lgb.train(params, data, num_boost_round=config.rounds, callbacks=[record])
+    return FittedProxy("gbdt", booster)
+
+
+def _linear_logits(pipe, X: np.ndarray) -> np.ndarray:
+    return _two_column(pipe.decision_function(X))
+
+
+def fit_linear(X, y, n_classes, categorical, config: ProxyConfig, seed: int, on_checkpoint: Checkpoint) -> FittedProxy:
+    """SGD logistic regression on standardised numeric and one-hot categorical features, one checkpoint per epoch."""
+    numeric = [j for j in range(X.shape[1]) if j not in set(categorical)]
+    prep = ColumnTransformer([
+        ("num", make_pipeline(SimpleImputer(strategy="mean", keep_empty_features=True), StandardScaler()), numeric),
+        ("cat", make_pipeline(SimpleImputer(strategy="most_frequent", keep_empty_features=True),
+                              OneHotEncoder(handle_unknown="ignore", max_categories=64, sparse_output=False)), categorical),
+    ])
+    params = {"loss": "log_loss", "alpha": 1e-4, **config.params, "random_state": seed}
+    sgd = SGDClassifier(**params)
+    Z = prep.fit_transform(X).astype(np.float64)
+    rng = np.random.default_rng(seed)
+    classes = np.arange(n_classes)
+    pipe = make_pipeline(prep, sgd)
+    for t in range(1, config.epochs + 1):
+        order = rng.permutation(len(y))
+        sgd.partial_fit(Z[order], y[order], classes=classes)
+        on_checkpoint(t, _two_column(sgd.decision_function(Z)))
+    return FittedProxy("linear", pipe)
+
+
+def n_checkpoints(config: ProxyConfig) -> int:
+    """Checkpoints per fitted proxy."""
+    return config.rounds // config.checkpoint_every if config.family == "gbdt" else config.epochs
+
+
+def fit_proxy(X, y, n_classes, categorical, config: ProxyConfig, seed: int, on_checkpoint: Checkpoint) -> FittedProxy:
+    """Fit the configured proxy family on (X, y) and report its checkpoints."""
+    fit = fit_gbdt if config.family == "gbdt" else fit_linear
+    return fit(X, y, n_classes, categorical, config, seed, on_checkpoint)
