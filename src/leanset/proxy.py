@@ -73,7 +73,7 @@ class FittedProxy:
 
 def fit_gbdt(X, y, n_classes, categorical, config: ProxyConfig, seed: int, on_checkpoint: Checkpoint) -> FittedProxy:
     """Fit LightGBM for ``config.rounds`` rounds, reporting logits every ``checkpoint_every`` rounds."""
-    params = {**GBDT_DEFAULTS, **config.params, "seed": seed}
+    params = {**GBDT_DEFAULTS, **config.params, "seed": seed, "bagging_fraction": 0.5, "bagging_freq": 1}
     params.update({"objective": "multiclass", "num_class": n_classes} if n_classes > 2 else {"objective": "binary"})
     data = lgb.Dataset(X, label=y, categorical_feature=categorical or "auto", free_raw_data=True)
     t = 0
@@ -82,7 +82,7 @@ def fit_gbdt(X, y, n_classes, categorical, config: ProxyConfig, seed: int, on_ch
         nonlocal t
         if (env.iteration + 1) % config.checkpoint_every == 0:
             t += 1
-            p = _as_matrix(np.array(env.model._Booster__inner_predict(0), dtype=np.float64))
+            p = _as_matrix(np.array(env.model._Booster__inner_predict(data_idx=0), dtype=np.float64))
             on_checkpoint(t, np.log(np.maximum(p, _EPS)))
 
     booster = lgb.train(params, data, num_boost_round=config.rounds, callbacks=[record])

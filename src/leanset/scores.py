@@ -171,7 +171,8 @@ def score(frame: RowFrame, config: Config) -> Scores:
                           lambda t, z: dyn.update(t, fit_rows, z, y[fit_rows]))
         oof[out_rows] = model.predict_proba(X[out_rows])
         proxies.append(model)
-    p_true = np.clip(oof[np.arange(len(y)), y], 1e-15, 1.0)
+    # clip as sklearn.metrics.log_loss does (float64 eps), so oof_loss averages to its value
+    p_true = np.clip(oof[np.arange(len(y)), y], np.finfo(np.float64).eps, 1.0)
     table = pd.DataFrame(dyn.result(np.arange(len(train))))
     table["oof_loss"] = -np.log(p_true)
     table["oof_margin"] = margin(oof, y)
