@@ -345,7 +345,10 @@ def test_stratified_10pct_digits_not_worse_than_random(tmp_path: Path):
     (tmp_path / "leanset.yaml").write_text(
         "input:\n  path: digits.parquet\n  label: digit\n"
         "selection:\n  fraction: 0.1\n  strategy: stratified\n  class_floor: 0\nseed: 0\n")
-    cfg = load_config(tmp_path / "leanset.yaml")
+    # One LightGBM thread: with other processes on the CPU, OpenMP threads spin and the default
+    # threading ran the 5 proxy fits ~15x slower (observed 33 s vs 2 s). The thread count changes
+    # LightGBM's float summation order, so the figures below hold for one thread only.
+    cfg = load_config(tmp_path / "leanset.yaml", {"proxy.params": {"num_threads": 1}})
     frame = load_table(cfg)
     scores = score(frame, cfg)  # leanset's default proxy (gbdt) and default score (aum)
     tr = frame.train
@@ -355,7 +358,7 @@ def test_stratified_10pct_digits_not_worse_than_random(tmp_path: Path):
     n_keep = int(sel.keep.sum())
     assert n_keep == round(0.1 * len(y_tr))
 
-    target = TargetConfig(params={"num_boost_round": 50})
+    target = TargetConfig(params={"num_boost_round": 50, "num_threads": 1})
     k = len(frame.classes)
     kept = fit_target(X_tr[sel.keep], y_tr[sel.keep], sel.weight[sel.keep], k, frame.categorical, target, cfg.seed)
     acc_kept = metric_value("accuracy", y_ho, kept.predict_proba(X_ho))
@@ -364,7 +367,8 @@ def test_stratified_10pct_digits_not_worse_than_random(tmp_path: Path):
         idx = np.random.default_rng([s, 10]).choice(len(y_tr), n_keep, replace=False)
         m = fit_target(X_tr[idx], y_tr[idx], None, k, frame.categorical, target, cfg.seed)
         acc_random.append(metric_value("accuracy", y_ho, m.predict_proba(X_ho)))
-    # Lower end of the random interval: the worst of 8 seeds. Observed when written (seed 0,
-    # 1438 training / 359 holdout rows, 144 kept): stratified 0.838; random mean 0.828, sd 0.031,
-    # range 0.780-0.864 (over 10 seeds).
+    # Lower end of the random interval: the worst of 8 seeds. Observed when written (seed 0, 1438
+    # training / 359 holdout rows, 144 kept): stratified 0.802; random 0.780-0.864, mean 0.816.
+    # Over config seeds 0-5 stratified (aum) gave 0.802-0.875 (mean 0.836) against random means of
+    # 0.798-0.845 (overall 0.821) and minima of 0.727-0.836: on par with random, not clearly above.
     assert acc_kept >= min(acc_random), (acc_kept, sorted(acc_random))

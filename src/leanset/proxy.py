@@ -73,7 +73,7 @@ class FittedProxy:
 
 def fit_gbdt(X, y, n_classes, categorical, config: ProxyConfig, seed: int, on_checkpoint: Checkpoint) -> FittedProxy:
     """Fit LightGBM for ``config.rounds`` rounds, reporting logits every ``checkpoint_every`` rounds."""
-    params = {**GBDT_DEFAULTS, **config.params, "seed": seed, "bagging_fraction": 0.5, "bagging_freq": 1}
+    params = {**GBDT_DEFAULTS, **config.params, "seed": seed}
     params.update({"objective": "multiclass", "num_class": n_classes} if n_classes > 2 else {"objective": "binary"})
     data = lgb.Dataset(X, label=y, categorical_feature=categorical or "auto", free_raw_data=True)
     t = 0
