@@ -203,6 +203,8 @@ def test_class_prior_weights_restore_class_shares(strategy, quotas, floor):
     np.testing.assert_allclose(w_kept / w_kept.sum(), full_share, rtol=0, atol=1e-9)
     assert np.all(sel.weight[~sel.keep] == 0)
     assert np.all(sel.weight[sel.keep] > 0)
+    # Normalised so the kept weights sum to the kept count (mean weight 1): common practice, no source.
+    assert sel.weight.sum() == pytest.approx(sel.keep.sum(), rel=1e-12)
     if quotas == "balanced":  # balanced quotas shift shares, so the weights are not all 1
         assert not np.allclose(sel.weight[sel.keep], 1.0)
 
@@ -273,6 +275,14 @@ def test_stratified_hard_cut():
     assert not np.any(sel.keep & cut)
     assert np.all(sel.stratum[cut] == -1)
     assert np.array_equal(sel.stratum[~cut], bins[~cut])
+    assert np.bincount(bins[sel.keep], minlength=4).tolist() == [2, 10, 14, 14]
+    # The strata are drawn over the rows left after the cut: an outlier at 40 that the cut removes
+    # does not stretch the bins (over [0, 40] every other row would fall into bin 0).
+    d_out = d.copy()
+    d_out[-1] = 40.0
+    sel = _stratified(d_out, 40, 0.1)
+    cut = sel.reason == "drop:hard_cut"
+    assert cut[-1] and np.array_equal(sel.stratum[~cut], bins[~cut])
     assert np.bincount(bins[sel.keep], minlength=4).tolist() == [2, 10, 14, 14]
     # The cut never eats into the budget: quota 60 leaves room for only 3 cut rows.
     sel = _stratified(d, 60, 0.1)

@@ -158,9 +158,6 @@ def test_unsupported_column_can_be_excluded_when_hashable(tmp_path):
     assert frame.X.shape == (150, 4)
 
 
-@pytest.mark.xfail(strict=True, raises=TypeError,
-                   reason="table.py:173 hashes every column, excluded ones too; pandas cannot hash list "
-                          "cells, so the advice 'add it to input.exclude' ends in a TypeError; see report")
 def test_excluded_list_column_loads(tmp_path):
     path, _, _ = _list_feature(tmp_path)
     frame = load_table(config(path, exclude=["tags"]))

@@ -11,6 +11,8 @@ External references:
 
 from __future__ import annotations
 
+import importlib
+
 import numpy as np
 import pytest
 from scipy import stats
@@ -19,13 +21,16 @@ from sklearn.datasets import load_breast_cancer, load_digits, load_wine
 from sklearn.linear_model import LogisticRegression
 from sklearn.model_selection import train_test_split
 
-import leanset.verify as verify_mod
 from leanset.config import SelectionConfig, TargetConfig, VerifyConfig
 from leanset.errors import ConfigError
 from leanset.select import select
 from leanset.verify import (
     FittedTarget, fit_target, mcnemar_exact, metric_value, paired_bootstrap, recall_drop, verify,
 )
+
+# The module itself, for monkeypatching: the package re-exports the function ``verify`` under the
+# same name, so ``import leanset.verify as m`` would bind the function, not the module.
+verify_mod = importlib.import_module("leanset.verify")
 
 # One LightGBM thread and 50 rounds keep the fits quick when other processes share the CPU
 # (OpenMP threads spin under contention); neither weakens the checks below.

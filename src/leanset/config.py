@@ -144,7 +144,11 @@ def load_config(path: str | Path, overrides: dict[str, Any] | None = None) -> Co
         node = raw
         *parents, leaf = dotted.split(".")
         for p in parents:
-            node = node.setdefault(p, {})
+            if node.get(p) is None:
+                node[p] = {}
+            node = node[p]
+            if not isinstance(node, dict):
+                raise ConfigError(f"{path}: cannot set '{dotted}': '{p}' is not a section; fix the override or the file")
         node[leaf] = value
     try:
         return Config.model_validate(raw)

@@ -34,6 +34,7 @@ def summary(run: dict[str, Any], run_dir: str | Path) -> Table:
     table.add_row("verdict", f"{v['status'].upper()}: Δ {v['metric']} = {v['delta']:+.4f}, "
                   f"{run['config']['verify']['confidence']:.0%} CI [{lo:+.4f}, {hi:+.4f}], tolerance {v['tolerance']}")
     table.add_row(v["metric"], f"full {v['full']:.4f} · kept {v['kept']:.4f} · random same size {v['random']:.4f}")
+    table.add_row("class recall", " · ".join(f"{name} {r['full']:.2f}→{r['kept']:.2f}" for name, r in v["per_class_recall"].items()))
     if v["failed_classes"]:
         table.add_row("class guard", "recall dropped too far for: " + ", ".join(v["failed_classes"]))
     ts = v["train_seconds"]

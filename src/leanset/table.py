@@ -208,9 +208,10 @@ def load_table(config: Config) -> RowFrame:
     _check_label_and_id(table, config, path)
     inp = config.input
 
-    df = table.to_pandas()
+    used = [c for c in (*numeric, *categorical, inp.label, inp.id) if c is not None]
+    df = table.select(used).to_pandas()
     content = _row_hashes(df)
-    fingerprint = hashlib.sha256(str(table.schema).encode() + content.tobytes()).hexdigest()[:32]
+    fingerprint = hashlib.sha256(str(table.select(used).schema).encode() + content.tobytes()).hexdigest()[:32]
     if inp.id is None:
         row_id = _derive_ids(content)
         source = table.append_column("row_id", pa.array(row_id, pa.string()))
