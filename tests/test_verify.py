@@ -279,6 +279,13 @@ def test_verdict_pass_fail_inconclusive(monkeypatch):
     v, _ = _scripted_verify(monkeypatch, np.arange(2, 200, 4), tolerance=1.0)
     assert v.status == "fail" and v.failed_classes == ["c2"]
     assert v.per_class_recall["c2"] == {"full": 1.0, "kept": 0.0, "drop": 1.0, "ci": [1.0, 1.0]}
+    # 5 of class c2's 50 rows wrong: its recall drop 0.1 sits on class_tolerance 0.1, its interval
+    # straddles it -> not failed, but not a pass either.
+    v, _ = _scripted_verify(monkeypatch, np.arange(2, 22, 4), tolerance=1.0, class_tolerance=0.1)
+    assert v.per_class_recall["c2"]["drop"] == pytest.approx(0.1)
+    lo, hi = v.per_class_recall["c2"]["ci"]
+    assert lo <= 0.1 < hi
+    assert v.failed_classes == [] and v.status == "inconclusive"
 
 
 def test_delta_orientation_log_loss_scripted(monkeypatch):
