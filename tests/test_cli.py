@@ -20,7 +20,7 @@ DEMO = ROOT / "configs" / "demo.yaml"
 
 runner = CliRunner()
 REASON_CODES = {"keep:stratum", "keep:floor", "keep:hard", "keep:easy", "keep:random",
-                "drop:over_budget", "drop:hard_cut", "holdout"}
+                "drop:over_budget", "drop:hard_cut", "drop:duplicate", "drop:suspect_label", "holdout"}
 
 
 def _config(tmp_path, table_path, **extra):
@@ -91,7 +91,7 @@ def test_demo_config_end_to_end(prefect_api, tmp_path):
     assert set(manifest["reason"]) <= REASON_CODES
     assert (manifest["decision"] == "keep").sum() == len(kept) == c["kept"]
     assert set(kept["inspection_id"]) == set(manifest.loc[manifest["decision"] == "keep", "row_id"])
-    assert list(kept.columns) == [*source.columns, "weight"]
+    assert list(kept.columns) == [*source.columns, "weight", "dup_count"]
     hold = manifest["split"] == "holdout"
     for name in SCORE_NAMES:
         assert manifest.loc[hold, name].isna().all() and manifest.loc[~hold, name].notna().all()

@@ -179,8 +179,9 @@ DATASETS = {"wine-3class": _wine, "breast_cancer-binary": _breast_cancer}
 # spin-wait for each other and these tiny fits slow down by 10-100x; the model is unchanged.
 ONE_THREAD = {"num_threads": 1}
 PROXIES = {
-    "gbdt": {"family": "gbdt", "folds": 3, "rounds": 20, "checkpoint_every": 5, "el2n_at": 0.5, "params": ONE_THREAD},
-    "linear": {"family": "linear", "folds": 3, "epochs": 4, "el2n_at": 0.5},
+    "gbdt": {"family": "gbdt", "folds": 3, "rounds": 20, "checkpoint_every": 5, "el2n_at": 0.5, "params": ONE_THREAD,
+             "threshold_samples": False},
+    "linear": {"family": "linear", "folds": 3, "epochs": 4, "el2n_at": 0.5, "threshold_samples": False},
 }
 EL2N_T = 2
 
@@ -258,7 +259,8 @@ def test_streaming_statistics_equal_direct_computation(tmp_path, monkeypatch, ma
         "aleatoric": (py * (1 - py)).mean(axis=(1, 2)),
     }
     table = s.table
-    assert len(table) == n and list(table.columns) == [*SCORE_NAMES, "never_learned"]
+    assert len(table) == n and list(table.columns) == [*SCORE_NAMES, "never_learned", "suspect_label"]
+    assert table["suspect_label"].isna().all()  # proxy.threshold_samples is off here
     np.testing.assert_array_equal(table["never_learned"].to_numpy(), ~learned)
     for name in STATS:
         got = table[name].to_numpy(np.float64)
@@ -384,3 +386,53 @@ def test_flipped_labels_rank_top_by_forgetting(noisy_digits):
     # The 0.85 bar is a project choice (common practice, no source).
     auc = _noise_auc(noisy_digits, "forgetting", {"proxy.family": "linear", "proxy.params": {"alpha": 1e-3}})
     assert auc >= 0.85
+
+
+# ---------------------------------------------------------------- repeats
+
+def test_repeats_average_the_scores_and_report_spearman_stability(tmp_path, monkeypatch):
+    # Paul et al. 2021 average EL2N over several training runs; here every score is the mean over
+    # proxy.repeats cross-fittings on fresh folds and seeds, and its stability is the mean
+    # Spearman correlation between repeats (scipy.stats.spearmanr).
+    from scipy.stats import spearmanr
+
+    proxy = {**PROXIES["linear"], "repeats": 3}
+    cfg, frame = _frame(tmp_path, _wine, proxy)
+    runs = []
+    real = scores_mod._cross_fit
+
+    def spy(*args):
+        out, models = real(*args)
+        runs.append(out)
+        return out, models
+
+    monkeypatch.setattr(scores_mod, "_cross_fit", spy)
+    s = score(frame, cfg)
+    assert len(runs) == 3
+    for name in SCORE_NAMES:
+        np.testing.assert_allclose(s.table[name].to_numpy(), np.mean([r[name] for r in runs], axis=0), atol=1e-12)
+        pairs = [spearmanr(runs[a][name], runs[b][name]).statistic for a, b in ((0, 1), (0, 2), (1, 2))]
+        assert s.info["stability"][name] == pytest.approx(np.mean(pairs), abs=1e-12)
+    # the repeats really differ (fresh folds and seeds), yet agree far more than chance
+    assert not np.allclose(runs[0]["aum"], runs[1]["aum"])
+    assert 0.5 < s.info["stability"]["aum"] < 1.0
+    # the first repeat is the single-repeat run: same folds and seeds as proxy.repeats = 1
+    one = score(frame, Config.model_validate({**cfg.model_dump(), "proxy": {**proxy, "repeats": 1}}))
+    np.testing.assert_allclose(runs[0]["aum"], one.table["aum"].to_numpy(), atol=1e-12)
+    assert one.info["stability"] is None
+
+
+# ---------------------------------------------------------------- benchmark command
+
+def test_bench_score_prints_its_figures_with_the_ratio_last():
+    # Behaviour only (figures are printed, never asserted): the command runs on a tiny invented
+    # table and its last line is the ratio of score-stage seconds to the K plain fits' seconds.
+    from typer.testing import CliRunner
+
+    from leanset.cli import app
+
+    result = CliRunner().invoke(app, ["bench", "score", "--rows", "3000", "--features", "5", "--folds", "3", "--rounds", "10"])
+    assert result.exit_code == 0, result.output
+    lines = result.output.strip().splitlines()
+    assert lines[-1].startswith("score_overhead_ratio=") and float(lines[-1].split("=")[1]) > 0
+    assert any(line.startswith("peak RSS:") for line in lines) and any("plain proxy fits (K=3)" in line for line in lines)

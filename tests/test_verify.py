@@ -255,8 +255,9 @@ def _scripted_verify(monkeypatch, kept_wrong, metric="accuracy", tolerance=0.02,
     X_train = np.arange(n_train, dtype=float)[:, None]
     v = verify(X_train, np.arange(n_train) % k, keep, np.ones(n_train), np.zeros((n_hold, 1)), y_hold,
                [f"c{c}" for c in range(k)], [], LGBM,
-               VerifyConfig(metric=metric, tolerance=tolerance, class_tolerance=class_tolerance, bootstrap=200), seed=0)
-    assert sorted(r for r, _, _ in fake.calls) == ["full", "kept", "random"]
+               VerifyConfig(metric=metric, tolerance=tolerance, class_tolerance=class_tolerance, bootstrap=200,
+                            random_repeats=2), seed=0)
+    assert sorted(r for r, _, _ in fake.calls) == ["full", "kept", "random", "random"]
     return v, probas
 
 
@@ -427,7 +428,8 @@ def test_weights_passed_to_kept_fit_only(monkeypatch):
         return fit_target(X, y, weight, *args, **kwargs)
 
     monkeypatch.setattr(verify_mod, "fit_target", spy)
-    v = verify(X_tr, y_tr, sel.keep, sel.weight, X_ho, y_ho, [0, 1], [], LGBM, VerifyConfig(bootstrap=200), seed=0)
+    v = verify(X_tr, y_tr, sel.keep, sel.weight, X_ho, y_ho, [0, 1], [], LGBM,
+               VerifyConfig(bootstrap=200, random_repeats=1), seed=0)
     n_keep = int(sel.keep.sum())
     (n_full, w_full), (n_kept, w_kept), (n_rand, w_rand) = calls
     assert (n_full, n_kept, n_rand) == (len(y_tr), n_keep, n_keep)

@@ -3,16 +3,27 @@
 The select and verify stages are the functions ``leanset.select.select`` and ``leanset.verify.verify``.
 """
 
-from .config import Config, load_config
+import importlib
+
 from .errors import ConfigError, InputError, LeansetError, StoreError
-from .scores import Scores, score
-from .select import Selection
-from .store import write_run
-from .table import RowFrame, load_table
-from .verify import Verdict
+
+# Public names are imported when first used, so that `leanset runs` / `why` / `history` start
+# without loading the model libraries (LightGBM, scikit-learn, SciPy).
+_LAZY = {
+    "Config": "config", "load_config": "config", "Scores": "scores", "score": "scores",
+    "Selection": "select", "write_run": "store", "RowFrame": "table", "load_table": "table", "Verdict": "verify",
+}
 
 __all__ = [
     "Config", "ConfigError", "InputError", "LeansetError", "RowFrame", "Scores", "Selection",
     "StoreError", "Verdict", "load_config", "load_table", "score", "write_run",
 ]
+
+
+def __getattr__(name: str):
+    if name in _LAZY:
+        return getattr(importlib.import_module(f".{_LAZY[name]}", __name__), name)
+    raise AttributeError(f"module 'leanset' has no attribute {name!r}")
+
+
 __version__ = "0.1.0"

@@ -2,11 +2,13 @@
 
 from __future__ import annotations
 
+import contextlib
 import os
 from pathlib import Path
 from typing import Optional
 
 import typer
+from rich import box
 from rich.console import Console
 
 from .config import load_config
@@ -30,7 +32,7 @@ def _fail(exc: LeansetError) -> None:
 @app.command()
 def run(
     config: Path = typer.Argument(..., help="YAML config file."),
-    fraction: Optional[float] = typer.Option(None, help="Override selection.fraction, in (0, 1]."),
+    fraction: Optional[str] = typer.Option(None, help="Override selection.fraction: a number in (0, 1], or auto."),
     strategy: Optional[str] = typer.Option(None, help="Override selection.strategy: stratified, hardest, easiest or random."),
     seed: Optional[int] = typer.Option(None, help="Override seed."),
     store: Optional[Path] = typer.Option(None, help="Override store (the folder that receives runs/)."),
@@ -40,6 +42,26 @@ def run(
     """Score, prune and verify the configured table; write a run directory and print a summary."""
     overrides = {"selection.fraction": fraction, "selection.strategy": strategy, "seed": seed,
                  "store": str(store.resolve()) if store else None}
+    _launch(config, overrides, wait, verbose, frontier=False)
+
+
+@app.command()
+def frontier(
+    config: Path = typer.Argument(..., help="YAML config file."),
+    fractions: Optional[str] = typer.Option(None, help="Override selection.grid: comma-separated fractions, e.g. 0.05,0.1,0.3."),
+    seed: Optional[int] = typer.Option(None, help="Override seed."),
+    store: Optional[Path] = typer.Option(None, help="Override store (the folder that receives runs/)."),
+    wait: float = typer.Option(0.0, help="Seconds to wait for another run holding the store's lock."),
+    verbose: bool = typer.Option(False, "--verbose", help="Show Prefect's own log lines."),
+) -> None:
+    """A run plus the frontier: the target's holdout metric for every grid fraction and strategy, and random."""
+    grid = None if fractions is None else [part.strip() for part in fractions.split(",") if part.strip()]
+    overrides = {"selection.grid": grid, "seed": seed, "store": str(store.resolve()) if store else None}
+    _launch(config, overrides, wait, verbose, frontier=True)
+
+
+def _launch(config: Path, overrides: dict, wait: float, verbose: bool, frontier: bool) -> None:
+    """Check config and input before any flow starts, run the flow, print the summary."""
     try:
         cfg = load_config(config, overrides)
         check_input(cfg)
@@ -47,14 +69,266 @@ def run(
         _fail(exc)
     if not verbose:
         os.environ.setdefault("PREFECT_LOGGING_LEVEL", "WARNING")
-    from .flows import prune_flow
-    from .report import read_run, summary
+    from .flows import frontier_flow, prune_flow
+    from .report import frontier_table, read_run, summary
 
     try:
-        run_dir = prune_flow(str(config), overrides, wait)
+        with _progress(enabled=not verbose):
+            run_dir = (frontier_flow if frontier else prune_flow)(str(config), overrides, wait)
     except LeansetError as exc:
         _fail(exc)
-    Console().print(summary(read_run(run_dir), run_dir))
+    run = read_run(run_dir)
+    console = Console()
+    if frontier:
+        console.print(frontier_table(run))
+    console.print(summary(run, run_dir))
+
+
+@contextlib.contextmanager
+def _progress(enabled: bool):
+    """A progress display on the terminal (stderr): the stage running, stages done, time taken."""
+    from rich.progress import BarColumn, Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
+
+    from .flows import STAGE_LISTENERS
+
+    if not enabled or not _err.is_terminal:
+        yield
+        return
+    with Progress(SpinnerColumn(), TextColumn("{task.description}"), BarColumn(), TextColumn("{task.completed} stages done"),
+                  TimeElapsedColumn(), console=_err, transient=True) as bar:
+        job = bar.add_task("starting", total=None)
+        seen: list[str] = []
+
+        def listen(stage: str) -> None:
+            bar.update(job, description=f"stage: {stage}", completed=len(seen))
+            seen.append(stage)
+
+        STAGE_LISTENERS.append(listen)
+        try:
+            yield
+        finally:
+            STAGE_LISTENERS.remove(listen)
+
+
+@app.command()
+def serve(
+    config: Path = typer.Argument(..., help="YAML config file; input.path is usually a folder that receives new parquet files."),
+    cron: str = typer.Option(..., "--cron", help='Cron schedule, e.g. "0 2 * * *" for 02:00 every day.'),
+    name: Optional[str] = typer.Option(None, help="Deployment name; default leanset-<config file name>."),
+    timezone: Optional[str] = typer.Option(None, help="Time zone of the cron schedule, e.g. Europe/Paris; default UTC."),
+    wait: float = typer.Option(0.0, help="Seconds a scheduled run waits for another run holding the store's lock."),
+) -> None:
+    """Serve the scheduled flow (leanset-scheduled) on a cron schedule until stopped (Ctrl-C).
+
+    Needs a Prefect API that outlives the command: `prefect server start` elsewhere, or PREFECT_API_URL.
+    """
+    try:
+        load_config(config)
+    except LeansetError as exc:
+        _fail(exc)
+    from prefect.client.schemas.schedules import CronSchedule
+
+    try:
+        schedule = CronSchedule(cron=cron, timezone=timezone or "UTC")
+    except ValueError as exc:
+        msg = exc.errors()[0]["msg"] if hasattr(exc, "errors") else str(exc)
+        _fail(LeansetError(f"--cron {cron!r} --timezone {timezone or 'UTC'}: {msg}; "
+                           "give five cron fields, e.g. \"0 2 * * *\", and an IANA time zone"))
+    from prefect.deployments.runner import EntrypointType
+
+    from .flows import scheduled_flow
+
+    # by module path, so that the served runs find the flow in the installed package from any folder
+    scheduled_flow.serve(name=name or f"leanset-{config.stem}", schedules=[schedule],
+                         parameters={"config_path": str(config.resolve()), "wait": wait},
+                         entrypoint_type=EntrypointType.MODULE_PATH)
+
+
+# --- audit: questions answered from the run store alone ---------------------------------------
+
+_STORE = typer.Option(Path("leanset-store"), "--store", help="The run store (the folder that holds runs/).")
+_JSON = typer.Option(False, "--json", help="Print JSON for machines instead of a table.")
+
+
+def _audit(fn, *args, **kwargs):
+    from . import audit
+
+    try:
+        return getattr(audit, fn)(*args, **kwargs)
+    except LeansetError as exc:
+        _fail(exc)
+
+
+def _emit(data, as_json: bool, table) -> None:
+    if as_json:
+        from .audit import as_json as dump
+
+        typer.echo(dump(data))
+    else:
+        Console().print(table)
+
+
+def _fmt(value, digits: int = 4) -> str:
+    if value is None:
+        return "–"
+    if isinstance(value, float):
+        return f"{value:.{digits}g}"
+    return str(value)
+
+
+@app.command("runs")
+def runs_command(store: Path = _STORE, json_: bool = _JSON) -> None:
+    """List the runs in a store: when, input rows, kept, verdict, churn."""
+    from rich.table import Table
+
+    rows = _audit("runs", store)
+    table = Table(title=f"runs in {store}", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False, collapse_padding=True)
+    for col in ("#", "run", "when (UTC)", "rows", "kept", "verdict", "churn"):
+        table.add_column(col, justify="left" if col in ("run", "when (UTC)", "verdict") else "right", no_wrap=col != "when (UTC)")
+    for r in rows:
+        churn = "–" if r["churn_rows"] is None else f"{r['churn_rows']:,} {r['churn_fraction']:.1%}"
+        table.add_row(str(r["sequence"]), r["run_id"], r["created"][:16].replace("T", " "), f"{r['rows']:,}",
+                      f"{r['kept']:,}", r["verdict"], churn)
+    _emit(rows, json_, table)
+
+
+@app.command("why")
+def why_command(row_id: str = typer.Argument(..., help="The row id (as in the manifest's row_id)."),
+                run: Optional[str] = typer.Option(None, "--run", help="Run id or unique prefix; default: the latest run holding the row."),
+                store: Path = _STORE, json_: bool = _JSON) -> None:
+    """Why a row was kept or dropped: decision, reason, scores and their class percentiles, thresholds."""
+    from rich.table import Table
+
+    w = _audit("why", store, row_id, run)
+    t = w["thresholds"]
+    table = Table(title=f"row {row_id} in run {w['run_id']}", show_header=False, title_justify="left")
+    table.add_column(style="bold")
+    table.add_column()
+    table.add_row("decision", f"{w['decision']} ({w['reason']})")
+    table.add_row("label · split", f"{w['label']} · {w['split']}")
+    table.add_row("stratum · weight", f"{_fmt(w['stratum'])} · {_fmt(w['weight'])}")
+    for name, value in w["scores"].items():
+        pct = w["percentiles"].get(name)
+        mark = " ◀ selection score" if name == t["score"] else ""
+        table.add_row(name, _fmt(value) + (f"  ({pct:.1f}th percentile in {w['percentile_within']})" if pct is not None else "") + mark)
+    table.add_row("selection", f"{t['strategy']} on {t['score']}, fraction {t['fraction']}, {t['quotas']} quotas, "
+                  f"floor {t['class_floor']}, hard cut {t['hard_cut']}, hysteresis {_fmt(t['hysteresis'])}")
+    if t["class_quota"] is not None:
+        table.add_row("class quota", f"{t['class_quota']:,} of {t['class_rows']:,} training rows of {w['label']}")
+    for reason, r in t["score_range_by_reason"].items():
+        table.add_row(f"  {reason}", f"{r['rows']:,} rows, {t['score']} in [{_fmt(r['low'])}, {_fmt(r['high'])}]")
+    _emit(w, json_, table)
+
+
+@app.command("history")
+def history_command(row_id: str = typer.Argument(..., help="The row id."), store: Path = _STORE, json_: bool = _JSON) -> None:
+    """A row's decision in every run of the store."""
+    from rich.table import Table
+
+    rows = _audit("history", store, row_id)
+    table = Table(title=f"history of row {row_id}", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
+    for col in ("#", "run", "decision", "reason", "stratum", "weight"):
+        table.add_column(col, no_wrap=col != "reason")
+    for r in rows:
+        table.add_row(str(r["sequence"]), r["run_id"], r["decision"], _fmt(r["reason"]),
+                      _fmt(r["stratum"]), _fmt(r["weight"]))
+    _emit(rows, json_, table)
+
+
+@app.command("diff")
+def diff_command(run_a: str = typer.Argument(..., help="The earlier run (id or unique prefix)."),
+                 run_b: str = typer.Argument(..., help="The later run (id or unique prefix)."),
+                 limit: int = typer.Option(20, help="Changed rows to list."),
+                 out: Optional[Path] = typer.Option(None, "--out", help="Write every changed row to this parquet file."),
+                 store: Path = _STORE, json_: bool = _JSON) -> None:
+    """Counts, and the rows whose decision changed between two runs, by reason."""
+    from rich.console import Group
+    from rich.table import Table
+
+    d = _audit("diff", store, run_a, run_b, limit, out)
+    c = d["counts"]
+    head = Table(title=f"{d['run_a']} → {d['run_b']}", show_header=False, title_justify="left")
+    head.add_column(style="bold")
+    head.add_column()
+    head.add_row("rows", f"{c['rows_a']:,} → {c['rows_b']:,} ({c['both']:,} in both, {c['only_b']:,} new, {c['only_a']:,} gone)")
+    head.add_row("decision changed", f"{c['changed']:,} of {c['both']:,} rows in both ({c['churn_fraction']:.2%})")
+    trans = Table(title="changed rows by reason", title_justify="left")
+    for col in ("from", "to", "rows"):
+        trans.add_column(col, justify="right" if col == "rows" else "left")
+    for t in d["transitions"]:
+        trans.add_row(t["reason_a"], t["reason_b"], f"{t['rows']:,}")
+    rows = Table(title=f"first {len(d['rows'])} changed rows" + (f" (all in {out})" if out else ""), title_justify="left")
+    for col in ("row_id", "label", "from", "to"):
+        rows.add_column(col)
+    for r in d["rows"]:
+        rows.add_row(r["row_id"], _fmt(r["label"]), r["reason_a"], r["reason_b"])
+    _emit(d, json_, Group(head, trans, rows) if d["transitions"] else head)
+
+
+@app.command("restore")
+def restore_command(run: str = typer.Argument(..., help="Run id or unique prefix."),
+                    reason: list[str] = typer.Option(..., "--reason", help="A drop reason to put back (repeat for several)."),
+                    out: Optional[Path] = typer.Option(None, "--out", help="Output file (.parquet, .csv or .tsv); default restore-<run>.parquet."),
+                    ids_only: bool = typer.Option(False, "--ids-only", help="Write only the manifest columns (row_id, label, decision, reason, weight); do not read the input table."),
+                    store: Path = _STORE, json_: bool = _JSON) -> None:
+    """Write the kept rows plus the dropped rows of the given reasons, with re-balanced weights."""
+    from rich.table import Table
+
+    if out is None:
+        out = Path(f"restore-{run}.parquet")
+    r = _audit("restore", store, run, reason, out, rows=not ids_only)
+    table = Table(title=f"restore from run {r['run_id']}", show_header=False, title_justify="left")
+    table.add_column(style="bold")
+    table.add_column()
+    table.add_row("rows written", f"{r['rows']:,} = {r['kept']:,} kept + {r['restored']:,} restored ({', '.join(r['reasons'])})")
+    table.add_row("written to", r["out"])
+    _emit(r, json_, table)
+
+
+@app.command("open-data")
+def open_data(
+    name: str = typer.Argument(..., help="digits, breast_cancer, wine, iris or diabetes."),
+    out: Path = typer.Option(..., help="Parquet file to write."),
+) -> None:
+    """Write one of scikit-learn's bundled datasets as a parquet table (label column: label)."""
+    from .datasets import export_bundled
+
+    try:
+        path = export_bundled(name, out)
+    except LeansetError as exc:
+        _fail(exc)
+    Console().print(f"wrote {path}")
+
+
+bench_app = typer.Typer(no_args_is_help=True, help="Benchmarks that print figures (time, peak memory).")
+app.add_typer(bench_app, name="bench")
+
+
+@bench_app.command("score")
+def bench_score_command(
+    rows: int = typer.Option(100_000, min=100, help="Rows of the invented table."),
+    features: int = typer.Option(50, min=1, help="Float32 feature columns."),
+    classes: int = typer.Option(3, min=2, help="Label classes."),
+    folds: int = typer.Option(5, help="proxy.folds."),
+    rounds: int = typer.Option(60, help="proxy.rounds."),
+    checkpoint_every: int = typer.Option(5, help="proxy.checkpoint_every."),
+    threshold_samples: bool = typer.Option(True, help="proxy.threshold_samples: include the two AUM threshold-sample passes."),
+    seed: int = typer.Option(0, help="seed."),
+) -> None:
+    """Time the score stage against K plain fits of the same gbdt proxy; the last line is score_overhead_ratio=…"""
+    from pydantic import ValidationError
+
+    from .bench import bench_score
+    from .config import Config
+    from .errors import ConfigError
+
+    try:
+        cfg = Config.model_validate({"input": {"path": "bench", "label": "label"}, "seed": seed, "proxy": {
+            "folds": folds, "rounds": rounds, "checkpoint_every": checkpoint_every, "threshold_samples": threshold_samples}})
+    except ValidationError as err:
+        _fail(ConfigError(f"bench score: {err.errors()[0]['loc'][-1]}: {err.errors()[0]['msg']}"))
+    for line in bench_score(rows, features, classes, cfg).lines():
+        typer.echo(line)
 
 
 def main() -> None:

@@ -9,7 +9,7 @@ from __future__ import annotations
 import hashlib
 import json
 from pathlib import Path
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
@@ -20,7 +20,8 @@ SCORE_NAMES = (
     "forgetting", "aum", "el2n", "confidence", "variability",
     "correctness", "aleatoric", "oof_loss", "oof_margin",
 )
-METRICS = ("accuracy", "balanced_accuracy", "macro_f1", "roc_auc", "log_loss")
+METRICS = ("accuracy", "balanced_accuracy", "macro_f1", "roc_auc", "log_loss", "rmse", "mae", "r2")
+REGRESSION_METRICS = ("rmse", "mae", "r2")
 
 
 class _Section(BaseModel):
@@ -33,6 +34,8 @@ class InputConfig(_Section):
     id: str | None = None
     features: list[str] | None = None
     exclude: list[str] = Field(default_factory=list)
+    task: Literal["auto", "classification", "regression"] = "auto"
+    segments: list[str] = Field(default_factory=list)
 
 
 class HoldoutConfig(_Section):
@@ -47,10 +50,18 @@ class ProxyConfig(_Section):
     epochs: int = Field(10, ge=2)
     el2n_at: float = Field(0.2, gt=0, le=1)
     params: dict[str, Any] = Field(default_factory=dict)
+    repeats: int = Field(1, ge=1, le=20)
+    residual_band: float | None = Field(None, gt=0)
+    residual_quantile: float = Field(0.25, gt=0, lt=1)
+    threshold_samples: bool = True
+    threshold_percentile: float = Field(90.0, gt=0, lt=100)
+    agreement_rows: int = Field(2000, ge=0)
+    agreement_floor: float = Field(0.3, ge=-1, le=1)
 
 
 class SelectionConfig(_Section):
-    fraction: float = Field(0.3, gt=0, le=1)
+    fraction: Annotated[float, Field(gt=0, le=1)] | Literal["auto"] = 0.3
+    grid: list[Annotated[float, Field(gt=0, le=1)]] = Field(default_factory=lambda: [0.05, 0.1, 0.2, 0.3, 0.5, 0.7], min_length=1)
     strategy: Literal["stratified", "hardest", "easiest", "random"] = "stratified"
     score: Literal[SCORE_NAMES] = "aum"  # type: ignore[valid-type]
     quotas: Literal["balanced", "proportional"] = "balanced"
@@ -58,6 +69,10 @@ class SelectionConfig(_Section):
     strata: int = Field(50, ge=1)
     hard_cut: float = Field(0.05, ge=0, lt=1)
     weights: Literal["class_prior", "none"] = "class_prior"
+    hysteresis: float = Field(0.1, ge=0, le=1)
+    drop_suspect_labels: bool = False
+    segment_floor: int = Field(20, ge=0)
+    dedupe: bool = True
 
 
 class TargetConfig(_Section):
@@ -77,6 +92,8 @@ class VerifyConfig(_Section):
     metric: Literal[METRICS] = "accuracy"  # type: ignore[valid-type]
     tolerance: float = Field(0.01, ge=0)
     class_tolerance: float = Field(0.10, ge=0)
+    segment_tolerance: float = Field(0.05, ge=0)
+    random_repeats: int = Field(3, ge=1)
     bootstrap: int = Field(1000, ge=100)
     confidence: float = Field(0.95, gt=0.5, lt=1)
 
@@ -101,7 +118,8 @@ class Config(_Section):
 
 def _first_error(err: ValidationError, source: str) -> ConfigError:
     e = err.errors()[0]
-    where = ".".join(str(p) for p in e["loc"]) or "<top>"
+    # pydantic adds union-member tags such as 'constrained-float' to the location; users never wrote them
+    where = ".".join(str(p) for p in e["loc"] if not any(ch in str(p) for ch in "-[(")) or "<top>"
     if e["type"] == "extra_forbidden":
         return ConfigError(f"{source}: unknown key '{where}'; remove it or check its spelling")
     if e["type"] == "missing":

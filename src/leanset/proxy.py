@@ -5,6 +5,7 @@ callback, so that the score stage can accumulate training dynamics without stori
 Logits are always an (n, n_classes) array; for LightGBM they are log-probabilities read from the
 booster's own running training scores (no extra prediction pass). Softmax is shift-invariant, so
 their margins and probabilities equal those of the raw scores.
+On a regression table (``n_classes`` 0) the callback gets the (n,) predicted values instead.
 """
 
 from __future__ import annotations
@@ -18,7 +19,7 @@ import lightgbm as lgb
 import numpy as np
 from sklearn.compose import ColumnTransformer
 from sklearn.impute import SimpleImputer
-from sklearn.linear_model import SGDClassifier
+from sklearn.linear_model import SGDClassifier, SGDRegressor
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import OneHotEncoder, StandardScaler
 
@@ -52,10 +53,19 @@ def _two_column(z: np.ndarray) -> np.ndarray:
 
 @dataclass
 class FittedProxy:
-    """One fold's proxy: predicts class probabilities and serialises without pickling."""
+    """One fold's proxy: predicts class probabilities (or values) and serialises without pickling.
+
+    ``y_shift`` and ``y_scale`` undo the label standardisation of a linear regression proxy.
+    """
 
     family: str
     model: Any
+    y_shift: float = 0.0
+    y_scale: float = 1.0
+
+    def predict(self, X: np.ndarray) -> np.ndarray:
+        """Predicted values of a regression proxy, shape (n,)."""
+        return self.y_shift + self.y_scale * np.asarray(self.model.predict(X), dtype=np.float64)
 
     def predict_proba(self, X: np.ndarray) -> np.ndarray:
         """Class probabilities, shape (n, n_classes)."""
@@ -68,13 +78,27 @@ class FittedProxy:
         if self.family == "gbdt":
             return self.model.model_to_string()
         sgd = self.model[-1]
-        return json.dumps({"coef": sgd.coef_.tolist(), "intercept": sgd.intercept_.tolist(), "classes": sgd.classes_.tolist()})
+        classes = sgd.classes_.tolist() if hasattr(sgd, "classes_") else None
+        return json.dumps({"coef": sgd.coef_.tolist(), "intercept": sgd.intercept_.tolist(), "classes": classes,
+                           "y_shift": self.y_shift, "y_scale": self.y_scale})
+
+
+def gbdt_params(n_classes: int, config: ProxyConfig, seed: int) -> dict[str, Any]:
+    """LightGBM parameters of the gbdt proxy (``n_classes`` 0: regression)."""
+    params = {**GBDT_DEFAULTS, **config.params, "seed": seed}
+    if n_classes == 0:
+        params["objective"] = "regression"
+    else:
+        params.update({"objective": "multiclass", "num_class": n_classes} if n_classes > 2 else {"objective": "binary"})
+    return params
 
 
 def fit_gbdt(X, y, n_classes, categorical, config: ProxyConfig, seed: int, on_checkpoint: Checkpoint) -> FittedProxy:
-    """Fit LightGBM for ``config.rounds`` rounds, reporting logits every ``checkpoint_every`` rounds."""
-    params = {**GBDT_DEFAULTS, **config.params, "seed": seed}
-    params.update({"objective": "multiclass", "num_class": n_classes} if n_classes > 2 else {"objective": "binary"})
+    """Fit LightGBM for ``config.rounds`` rounds, reporting logits every ``checkpoint_every`` rounds.
+
+    With ``n_classes`` 0 (regression) it reports the (n,) predicted values instead of logits.
+    """
+    params = gbdt_params(n_classes, config, seed)
     data = lgb.Dataset(X, label=y, categorical_feature=categorical or "auto", free_raw_data=True)
     t = 0
 
@@ -82,8 +106,11 @@ def fit_gbdt(X, y, n_classes, categorical, config: ProxyConfig, seed: int, on_ch
         nonlocal t
         if (env.iteration + 1) % config.checkpoint_every == 0:
             t += 1
-            p = _as_matrix(np.array(env.model._Booster__inner_predict(data_idx=0), dtype=np.float64))
-            on_checkpoint(t, np.log(np.maximum(p, _EPS)))
+            raw = np.asarray(env.model._Booster__inner_predict(data_idx=0), dtype=np.float64)
+            if n_classes:
+                raw = np.maximum(_as_matrix(raw), _EPS)  # a fresh array: the booster's buffer stays untouched
+                np.log(raw, out=raw)
+            on_checkpoint(t, raw)
 
     booster = lgb.train(params, data, num_boost_round=config.rounds, callbacks=[record])
     return FittedProxy("gbdt", booster)
@@ -101,10 +128,12 @@ def fit_linear(X, y, n_classes, categorical, config: ProxyConfig, seed: int, on_
         ("cat", make_pipeline(SimpleImputer(strategy="most_frequent", keep_empty_features=True),
                               OneHotEncoder(handle_unknown="ignore", max_categories=64, sparse_output=False)), categorical),
     ])
-    params = {"loss": "log_loss", "alpha": 1e-4, **config.params, "random_state": seed}
-    sgd = SGDClassifier(**params)
     Z = prep.fit_transform(X).astype(np.float64)
     rng = np.random.default_rng(seed)
+    if n_classes == 0:
+        return _fit_linear_regression(Z, y, prep, config, seed, rng, on_checkpoint)
+    params = {"loss": "log_loss", "alpha": 1e-4, **config.params, "random_state": seed}
+    sgd = SGDClassifier(**params)
     classes = np.arange(n_classes)
     pipe = make_pipeline(prep, sgd)
     for t in range(1, config.epochs + 1):
@@ -114,12 +143,24 @@ def fit_linear(X, y, n_classes, categorical, config: ProxyConfig, seed: int, on_
     return FittedProxy("linear", pipe)
 
 
+def _fit_linear_regression(Z, y, prep, config: ProxyConfig, seed: int, rng, on_checkpoint: Checkpoint) -> FittedProxy:
+    """SGD least squares on a standardised label (SGD's step sizes assume unit scale), one checkpoint per epoch."""
+    shift, scale = float(np.mean(y)), float(np.std(y)) or 1.0
+    target = (y - shift) / scale
+    sgd = SGDRegressor(**{"alpha": 1e-4, **config.params, "random_state": seed})
+    for t in range(1, config.epochs + 1):
+        order = rng.permutation(len(y))
+        sgd.partial_fit(Z[order], target[order])
+        on_checkpoint(t, shift + scale * sgd.predict(Z))
+    return FittedProxy("linear", make_pipeline(prep, sgd), y_shift=shift, y_scale=scale)
+
+
 def n_checkpoints(config: ProxyConfig) -> int:
     """Checkpoints per fitted proxy."""
     return config.rounds // config.checkpoint_every if config.family == "gbdt" else config.epochs
 
 
 def fit_proxy(X, y, n_classes, categorical, config: ProxyConfig, seed: int, on_checkpoint: Checkpoint) -> FittedProxy:
-    """Fit the configured proxy family on (X, y) and report its checkpoints."""
+    """Fit the configured proxy family on (X, y) and report its checkpoints (``n_classes`` 0: regression)."""
     fit = fit_gbdt if config.family == "gbdt" else fit_linear
     return fit(X, y, n_classes, categorical, config, seed, on_checkpoint)

@@ -6,7 +6,9 @@ import json
 from pathlib import Path
 from typing import Any
 
+from rich import box
 from rich.table import Table
+from rich.text import Text
 
 CAUTION = ("Pruning can hide harm to small groups and rare cases: check per-group metrics, keep a human "
            "review for high-stakes uses, and follow local data-retention rules. The input table is untouched.")
@@ -27,7 +29,8 @@ def summary(run: dict[str, Any], run_dir: str | Path) -> Table:
     table.add_row("rows in", f"{run['input']['rows']:,} ({c['train']:,} train, {c['holdout']:,} holdout, never pruned)")
     share = c["kept"] / max(c["train"], 1)
     floor = f"; floors added {sel['floor_adjustment']:,}" if sel.get("floor_adjustment") else ""
-    table.add_row("rows kept", f"{c['kept']:,} of {c['train']:,} train rows ({share:.1%}){floor}")
+    dups = f"; {sel['duplicates_dropped']:,} exact duplicates dropped" if sel.get("duplicates_dropped") else ""
+    table.add_row("rows kept", f"{c['kept']:,} of {c['train']:,} train rows ({share:.1%}){floor}{dups}")
     cfg = run["config"]["selection"]
     table.add_row("selection", f"{cfg['strategy']} on {cfg['score']}, {cfg['quotas']} class quotas")
     lo, hi = v["ci"]
@@ -37,9 +40,67 @@ def summary(run: dict[str, Any], run_dir: str | Path) -> Table:
     table.add_row("class recall", " · ".join(f"{name} {r['full']:.2f}→{r['kept']:.2f}" for name, r in v["per_class_recall"].items()))
     if v["failed_classes"]:
         table.add_row("class guard", "recall dropped too far for: " + ", ".join(v["failed_classes"]))
+    if "search" in run:
+        tried = ", ".join(f"{t['fraction']:g} {t['status']}" for t in run["search"]["tried"])
+        found = run["search"]["fraction"]
+        head = f"smallest passing {found:g}" if found < 1 else "no grid fraction passed; all rows kept"
+        table.add_row("fraction search", f"{head} (tried {tried})")
+    table.add_row("random interval", f"{v['random_ci'][0]:.4f} – {v['random_ci'][1]:.4f} over "
+                  f"{run['config']['verify']['random_repeats']} random subsets")
+    if v.get("failed_segments"):
+        table.add_row("segment guard", "metric dropped too far for: " + ", ".join(v["failed_segments"]))
+    ag = run.get("agreement")
+    if ag:
+        warn = " (below the floor: the proxy may be a poor stand-in for the target)" if ag["below_floor"] else ""
+        table.add_row("proxy-target", f"Spearman {ag['spearman']:+.2f} between {ag['score']} and target out-of-fold loss "
+                      f"on {ag['rows']:,} rows, floor {ag['floor']:+.2f}{warn}")
     ts = v["train_seconds"]
     table.add_row("target training", f"full {ts['full']:.2f}s · kept {ts['kept']:.2f}s · speed-up {v['speedup']:.1f}×")
     table.add_row("stage seconds", " · ".join(f"{k} {s:.1f}" for k, s in run["timings"].items()))
+    ch = run.get("churn")
+    if ch:
+        table.add_row("churn", f"{ch['rows']:,} of {ch['rows_in_both']:,} rows changed decision since run {ch['parent_run']} "
+                      f"({ch['fraction']:.2%}); {ch['new_rows']:,} new rows")
     table.add_row("written to", str(run_dir))
+    table.add_row("report", Text(str(Path(run_dir) / "report.html"), overflow="fold"))
     table.add_row("caution", CAUTION)
     return table
+
+
+def frontier_table(run: dict[str, Any]) -> Table:
+    """The frontier of a run as a table: metric and interval per fraction and strategy (timings are in frontier.parquet)."""
+    metric = run["verdict"]["metric"]
+    table = Table(title=f"frontier: holdout {metric} by fraction kept", title_justify="left", box=box.SIMPLE_HEAD)
+    for name in ("frac", "strategy", "kept", metric[:10], "interval", "Δ", "status"):
+        table.add_column(name, no_wrap=True, justify="left" if name in ("strategy", "status") else "right")
+    for r in run["frontier"]:
+        table.add_row(f"{r['fraction']:g}", r["strategy"], f"{r['kept']:,}", f"{r['metric']:.4f}",
+                      f"{r['ci_lo']:.3f}–{r['ci_hi']:.3f}", f"{r['delta']:+.4f}", r["status"])
+    return table
+
+
+def markdown_summary(run: dict[str, Any], run_dir: str | Path) -> str:
+    """A short markdown summary of a run (the scheduled flow publishes it as a Prefect artifact)."""
+    v, c = run["verdict"], run["counts"]
+    lo, hi = v["ci"]
+    lines = [f"# leanset run `{run['run_id']}`", "",
+             f"**{v['status'].upper()}**: Δ {v['metric']} = {v['delta']:+.4f}, interval [{lo:+.4f}, {hi:+.4f}], "
+             f"tolerance {v['tolerance']}", "",
+             "| | |", "|---|---|",
+             f"| rows in | {run['input']['rows']:,} ({c['train']:,} train, {c['holdout']:,} holdout) |",
+             f"| rows kept | {c['kept']:,} of {c['train']:,} ({c['kept'] / max(c['train'], 1):.1%}) |",
+             f"| {v['metric']} | full {v['full']:.4f} · kept {v['kept']:.4f} · random {v['random']:.4f} |",
+             f"| new rows | {c.get('new', run['input']['rows']):,} |"]
+    ch = run.get("churn")
+    if ch:
+        lines.append(f"| churn | {ch['rows']:,} of {ch['rows_in_both']:,} ({ch['fraction']:.2%}) since `{ch['parent_run']}` |")
+    lines += [f"| report | `{Path(run_dir) / 'report.html'}` |", "", f"_{CAUTION}_"]
+    return "\n".join(lines)
+
+
+def reason_counts(manifest) -> list[dict[str, Any]]:
+    """Rows per (decision, reason) of a manifest (a pyarrow Table), largest first."""
+    counts = manifest.group_by(["decision", "reason"]).aggregate([("row_id", "count")])
+    rows = [{"decision": d, "reason": r, "rows": int(n)} for d, r, n in
+            zip(*(counts.column(k).to_pylist() for k in ("decision", "reason", "row_id_count")))]
+    return sorted(rows, key=lambda r: (-r["rows"], r["reason"]))

@@ -17,18 +17,27 @@ p_t = softmax(z_t), y the label, correct_t = [argmax p_t = y]):
   never saw the row.
 
 Statistics are accumulated checkpoint by checkpoint in row chunks; no rows x checkpoints array exists.
+
+Also here: the regression analogues (``ResidualDynamics``), repeated cross-fitting with Spearman
+stability, suspected label errors by AUM threshold samples (``threshold_samples``), and the
+proxy-target agreement (``agreement``).
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from itertools import combinations
 
 import numpy as np
 import pandas as pd
+from scipy import stats
 
-from .config import Config, SCORE_NAMES
+from .config import Config, ProxyConfig, SCORE_NAMES
 from .proxy import FittedProxy, fit_proxy, n_checkpoints, softmax
 from .table import RowFrame
+from .verify import fit_target
 
 CHUNK = 65_536
 #: Sign that turns each score into a difficulty (higher = harder).
@@ -85,14 +94,16 @@ class Dynamics:
 
     def _update(self, t, rows, z, y):
         idx = np.arange(len(y))
-        p = softmax(np.asarray(z, dtype=np.float64))
+        z = np.asarray(z, dtype=np.float64)
+        p = softmax(z)
         py = p[idx, y]
-        correct = z[idx, y] > _other_max(z, y)
+        m = margin(z, y)
+        correct = m > 0  # z[y] above every other logit; for finite floats a - b > 0 exactly when a > b
         prev = self.prev_correct[rows]
         self.forgetting[rows] += (prev == 1) & ~correct
         self.prev_correct[rows] = correct
         self.ever_correct[rows] |= correct
-        self.margin_sum[rows] += margin(np.asarray(z, dtype=np.float64), y)
+        self.margin_sum[rows] += m
         self.correct_sum[rows] += correct
         self.aleatoric_sum[rows] += py * (1.0 - py)
         n = self.count[rows] + 1
@@ -122,6 +133,120 @@ class Dynamics:
         }
 
 
+class ResidualDynamics:
+    """Running per-row statistics of a regression proxy's checkpoints (the DESIGN.md analogues).
+
+    With r_t = ŷ_t − y and correct_t = [|r_t| ≤ band]: ``forgetting`` and ``correctness`` as for
+    classes, ``aum`` the mean of the margin analogue −|r_t|, ``el2n`` |r_e| at the early
+    checkpoint, ``variability`` the population standard deviation of ŷ_t; ``confidence`` and
+    ``aleatoric`` have no analogue and are NaN.
+
+    Parameters
+    ----------
+    n : int
+    el2n_checkpoint : int
+    band : float
+        Largest |r_t| that counts as correct.
+    """
+
+    def __init__(self, n: int, el2n_checkpoint: int, band: float):
+        self.core = Dynamics(n, el2n_checkpoint)
+        self.band = band
+
+    def start_model(self, rows: np.ndarray) -> None:
+        """Mark the start of a new model's checkpoints for ``rows``."""
+        self.core.start_model(rows)
+
+    def update(self, t: int, rows: np.ndarray, pred: np.ndarray, y: np.ndarray) -> None:
+        """Fold in checkpoint ``t`` for ``rows``; ``pred`` is (len(rows),), ``y`` their labels."""
+        d = self.core
+        for s in range(0, len(rows), CHUNK):
+            r, p, yy = rows[s:s + CHUNK], pred[s:s + CHUNK], y[s:s + CHUNK]
+            res = np.abs(p - yy)
+            correct = res <= self.band
+            prev = d.prev_correct[r]
+            d.forgetting[r] += (prev == 1) & ~correct
+            d.prev_correct[r] = correct
+            d.ever_correct[r] |= correct
+            d.margin_sum[r] -= res
+            d.correct_sum[r] += correct
+            n = d.count[r] + 1
+            delta = p - d.p_mean[r]
+            mean = d.p_mean[r] + delta / n
+            d.p_m2[r] += delta * (p - mean)
+            d.p_mean[r] = mean
+            d.count[r] = n
+            if t == d.el2n_checkpoint:
+                d.el2n_sum[r] += res
+                d.el2n_count[r] += 1
+
+    def result(self, rows: np.ndarray) -> dict[str, np.ndarray]:
+        """The finished statistics of ``rows``."""
+        out = self.core.result(rows)
+        out["confidence"] = np.full(len(rows), np.nan)
+        out["aleatoric"] = np.full(len(rows), np.nan)
+        return out
+
+
+def residual_band(y: np.ndarray, config: ProxyConfig) -> float:
+    """``proxy.residual_band``, or the ``residual_quantile`` of |y − median(y)| (the constant model's residuals)."""
+    if config.residual_band is not None:
+        return float(config.residual_band)
+    return float(np.quantile(np.abs(y - np.median(y)), config.residual_quantile))
+
+
+def _margin_sums(n: int) -> tuple[np.ndarray, Callable]:
+    """A zeroed per-row margin sum and the checkpoint callback that adds to it."""
+    total = np.zeros(n)
+
+    def add(rows: np.ndarray, z: np.ndarray, y: np.ndarray) -> None:
+        for s in range(0, len(rows), CHUNK):
+            total[rows[s:s + CHUNK]] += margin(np.asarray(z[s:s + CHUNK], dtype=np.float64), y[s:s + CHUNK])
+    return total, add
+
+
+def threshold_samples(X: np.ndarray, y: np.ndarray, n_classes: int, categorical: list[int], config: ProxyConfig,
+                      seed: int) -> tuple[np.ndarray, dict]:
+    """Suspected label errors by the AUM threshold-sample procedure (Pleiss et al., NeurIPS 2020).
+
+    Two extra proxy fits on all rows. In each, a seeded random slice of n / (k + 1) rows is
+    relabelled to a fake class k + 1, so those rows are mislabelled by construction; the
+    ``threshold_percentile`` of their AUM is the cut-off. The slices of the two fits are disjoint,
+    so every row is judged in at least one fit as a row with its own label; its gap to the cut-off
+    is averaged over the fits that judged it, and a negative gap marks it suspect.
+
+    Returns
+    -------
+    suspect : ndarray of bool, shape (n,)
+    info : dict
+        The cut-off of each fit and the number of suspects.
+    """
+    n = len(y)
+    T = n_checkpoints(config)
+    rng = np.random.default_rng([seed, 0xA0C])
+    order = rng.permutation(n)
+    m = n // (n_classes + 1)
+    gap, judged, cutoffs = np.zeros(n), np.zeros(n, np.int64), []
+    for j in range(2):
+        fake = order[j * m:(j + 1) * m]
+        labels = y.astype(np.int32, copy=True)
+        labels[fake] = n_classes
+        total, add = _margin_sums(n)
+        rows = np.arange(n)
+        fit_proxy(X, labels, n_classes + 1, categorical, config, int(rng.integers(2**31)),
+                  lambda t, z: add(rows, z, labels))
+        aum = total / T
+        cutoff = float(np.percentile(aum[fake], config.threshold_percentile))
+        real = np.ones(n, bool)
+        real[fake] = False
+        gap[real] += aum[real] - cutoff
+        judged[real] += 1
+        cutoffs.append(cutoff)
+    suspect = gap / np.maximum(judged, 1) < 0
+    return suspect, {"cutoffs": cutoffs, "threshold_rows": int(m), "suspects": int(suspect.sum()),
+                     "percentile": config.threshold_percentile}
+
+
 @dataclass
 class Scores:
     """Per-row scores of the training rows.
@@ -130,24 +255,87 @@ class Scores:
     ----------
     table : pandas.DataFrame
         One row per training row, in ``frame.train`` order: a column per score in
-        ``SCORE_NAMES`` plus ``never_learned``.
+        ``SCORE_NAMES``, ``never_learned`` and ``suspect_label`` (nullable boolean: null when the
+        threshold-sample passes did not run).
     proxies : list of FittedProxy
-        The fold models, in fold order.
+        The fold models of the first repeat, in fold order.
     checkpoints : int
         Checkpoints per fold model.
+    info : dict
+        ``repeats`` and ``stability`` (Spearman between repeats per score), ``label_errors``
+        (threshold-sample cut-offs), and ``agreement`` once :func:`agreement` has run.
     """
 
     table: pd.DataFrame
     proxies: list[FittedProxy]
     checkpoints: int
+    info: dict = field(default_factory=dict)
 
     def difficulty(self, name: str) -> np.ndarray:
         """Score ``name`` oriented so that higher means harder."""
         return DIFFICULTY_SIGN[name] * self.table[name].to_numpy(np.float64)
 
 
+def _refold(groups: np.ndarray, folds: int, rng: np.random.Generator) -> np.ndarray:
+    """A fresh stratified fold assignment: within each group, a seeded shuffle dealt round-robin."""
+    order = np.lexsort((rng.random(len(groups)), groups))
+    counts = np.bincount(groups)
+    starts = np.repeat(np.concatenate(([0], np.cumsum(counts)[:-1])), counts)
+    fold = np.empty(len(groups), np.int8)
+    fold[order] = (np.arange(len(groups)) - starts) % folds
+    return fold
+
+
+def _cross_fit(X, rows, y, fold, n_classes, categorical, pc: ProxyConfig, seeds: list[int]) -> tuple[dict, list[FittedProxy]]:
+    """One cross-fitting pass: in-fold dynamics and out-of-fold scores of every row.
+
+    ``X`` is the whole feature matrix and ``rows`` the indices of the scored rows in it, so each
+    fold copies only the rows it fits on, never all training rows at once.
+    """
+    n, T = len(y), n_checkpoints(pc)
+    el2n_at = max(1, int(round(pc.el2n_at * T)))
+    dyn = Dynamics(n, el2n_at) if n_classes else ResidualDynamics(n, el2n_at, residual_band(y, pc))
+    oof = np.empty((n, n_classes)) if n_classes else np.empty(n)
+    proxies = []
+    for k in range(pc.folds):
+        fit_rows = np.flatnonzero(fold != k)
+        out_rows = np.flatnonzero(fold == k)
+        dyn.start_model(fit_rows)
+        model = fit_proxy(X[rows[fit_rows]], y[fit_rows], n_classes, categorical, pc, seeds[k],
+                          lambda t, z: dyn.update(t, fit_rows, z, y[fit_rows]))
+        X_out = X[rows[out_rows]]
+        oof[out_rows] = model.predict_proba(X_out) if n_classes else model.predict(X_out)
+        del X_out
+        proxies.append(model)
+    if not n_classes:
+        out = dyn.result(np.arange(n))
+        out["oof_loss"] = (oof - y) ** 2  # per-row squared error: averages to sklearn.metrics.mean_squared_error
+        out["oof_margin"] = -np.abs(oof - y)
+        return out, proxies
+    # clip as sklearn.metrics.log_loss does (float64 eps), so oof_loss averages to its value
+    p_true = np.clip(oof[np.arange(n), y], np.finfo(np.float64).eps, 1.0)
+    out = dyn.result(np.arange(n))
+    out["oof_loss"] = -np.log(p_true)
+    out["oof_margin"] = margin(oof, y)
+    return out, proxies
+
+
+def stability(repeats: list[dict]) -> dict[str, float | None]:
+    """Mean Spearman correlation (``scipy.stats.spearmanr``) of each score over pairs of repeats."""
+    out: dict[str, float | None] = {}
+    for name in SCORE_NAMES:
+        rhos = [stats.spearmanr(a[name], b[name]).statistic for a, b in combinations(repeats, 2)
+                if np.ptp(a[name]) > 0 and np.ptp(b[name]) > 0]
+        out[name] = float(np.mean(rhos)) if rhos else None
+    return out
+
+
 def score(frame: RowFrame, config: Config) -> Scores:
     """Cross-fit the proxy over the folds of ``frame`` and score every training row.
+
+    With ``proxy.repeats`` > 1 the cross-fitting runs again on fresh seeded folds and proxy seeds,
+    and every score is the mean over repeats (the EL2N paper averages over initialisations). With
+    ``proxy.threshold_samples`` the AUM threshold-sample passes mark suspected label errors.
 
     Returns
     -------
@@ -156,24 +344,65 @@ def score(frame: RowFrame, config: Config) -> Scores:
     pc = config.proxy
     train = frame.train
     y = frame.y[train]
-    fold = frame.fold[train]
-    X = frame.X[train]
     n_classes = len(frame.classes)
-    T = n_checkpoints(pc)
-    dyn = Dynamics(len(train), el2n_checkpoint=max(1, int(round(pc.el2n_at * T))))
-    oof = np.empty((len(train), n_classes))
-    proxies = []
+    runs, proxies = [], []
+    for r in range(pc.repeats):
+        if r == 0:
+            fold, seeds = frame.fold[train], [config.seed + k for k in range(pc.folds)]
+        else:
+            rng = np.random.default_rng([config.seed, 0x2E9, r])
+            fold, seeds = _refold(frame.groups[train], pc.folds, rng), [int(v) for v in rng.integers(2**31, size=pc.folds)]
+        out, models = _cross_fit(frame.X, train, y, fold, n_classes, frame.categorical, pc, seeds)
+        runs.append(out)
+        proxies = proxies or models
+    table = pd.DataFrame({name: np.mean([o[name] for o in runs], axis=0) for name in SCORE_NAMES})
+    table["never_learned"] = np.logical_and.reduce([o["never_learned"] for o in runs])
+    info: dict = {"repeats": pc.repeats, "stability": stability(runs) if pc.repeats > 1 else None}
+    del runs
+    suspect = pd.array(np.full(len(y), pd.NA), dtype="boolean")
+    if pc.threshold_samples and n_classes:
+        t0 = time.perf_counter()
+        flags, info["label_errors"] = threshold_samples(frame.X[train], y, n_classes, frame.categorical, pc, config.seed)
+        info["timings"] = {"threshold_samples": round(time.perf_counter() - t0, 3)}
+        suspect = pd.array(flags, dtype="boolean")
+    table["suspect_label"] = suspect
+    return Scores(table=table, proxies=proxies, checkpoints=n_checkpoints(pc), info=info)
+
+
+def agreement(frame: RowFrame, scores: Scores, config: Config) -> dict | None:
+    """How well the proxy stands in for the target: Spearman correlation between the proxy's
+    difficulty (``selection.score``) and the target model's out-of-fold loss on a seeded sample.
+
+    The target is cross-fitted within the sample (``proxy.folds`` folds drawn afresh per class or
+    label bin); its loss is −log p[y], or the squared error on a regression table. Correlation is
+    ``scipy.stats.spearmanr``; ``None`` when ``proxy.agreement_rows`` is 0.
+
+    Returns
+    -------
+    dict or None
+        ``score``, ``rows``, ``spearman``, ``floor`` and ``below_floor``.
+    """
+    pc = config.proxy
+    train = frame.train
+    m = min(pc.agreement_rows, len(train))
+    if m == 0:
+        return None
+    rng = np.random.default_rng([config.seed, 0xA9E])
+    sample = np.sort(rng.choice(len(train), size=m, replace=False))
+    rows = train[sample]
+    X, y = frame.X[rows], frame.y[rows]
+    fold = _refold(frame.groups[rows], pc.folds, rng)
+    n_classes = len(frame.classes)
+    loss = np.empty(m)
     for k in range(pc.folds):
-        fit_rows = np.flatnonzero(fold != k)
-        out_rows = np.flatnonzero(fold == k)
-        dyn.start_model(fit_rows)
-        model = fit_proxy(X[fit_rows], y[fit_rows], n_classes, frame.categorical, pc, config.seed + k,
-                          lambda t, z: dyn.update(t, fit_rows, z, y[fit_rows]))
-        oof[out_rows] = model.predict_proba(X[out_rows])
-        proxies.append(model)
-    # clip as sklearn.metrics.log_loss does (float64 eps), so oof_loss averages to its value
-    p_true = np.clip(oof[np.arange(len(y)), y], np.finfo(np.float64).eps, 1.0)
-    table = pd.DataFrame(dyn.result(np.arange(len(train))))
-    table["oof_loss"] = -np.log(p_true)
-    table["oof_margin"] = margin(oof, y)
-    return Scores(table=table[[*SCORE_NAMES, "never_learned"]], proxies=proxies, checkpoints=T)
+        fit, out = fold != k, fold == k
+        model = fit_target(X[fit], y[fit], None, n_classes, frame.categorical, config.target, config.seed + k)
+        pred = model.predict_proba(X[out])
+        if n_classes:
+            loss[out] = -np.log(np.clip(pred[np.arange(len(pred)), y[out]], np.finfo(np.float64).eps, 1.0))
+        else:
+            loss[out] = (pred - y[out]) ** 2
+    name = config.selection.score
+    rho = float(stats.spearmanr(scores.difficulty(name)[sample], loss).statistic)
+    return {"score": name, "rows": int(m), "spearman": rho, "floor": pc.agreement_floor,
+            "below_floor": bool(not rho >= pc.agreement_floor)}

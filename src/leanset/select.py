@@ -11,15 +11,20 @@ rows of its order. Strategies:
   small bin keeps all its rows and what it leaves goes to the larger ones.
 - ``random``: uniform, the baseline.
 
+Exact duplicates (same features and label) collapse to their first occurrence first. Within a
+class, segments (``input.segments``) share the quota in proportion to their size, and each
+segment value keeps at least ``min(n_v, segment_floor)`` rows.
+
 Class quotas are water-filled: ``balanced`` offers every class the same count, ``proportional``
 the same share of its size; both respect ``min(n_c, class_floor)`` and ``n_c``.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
+import pandas as pd
 
 from .config import SelectionConfig
 
@@ -30,7 +35,9 @@ REASONS = {
     "keep:random": "kept by a uniform random draw within its class (random)",
     "keep:floor": "kept only because its class would otherwise fall below selection.class_floor",
     "drop:over_budget": "dropped: its class's budget was filled by higher-priority rows",
+    "drop:duplicate": "dropped: an exact copy (features and label) of an earlier row, which stands for it with dup_count",
     "drop:hard_cut": "dropped: among the hardest selection.hard_cut of its class, set aside as likely label noise (stratified)",
+    "drop:suspect_label": "dropped: its AUM is below the threshold-sample cut-off, a suspected label error (selection.drop_suspect_labels)",
     "holdout": "in the holdout: never pruned, used only to verify",
 }
 _KEEP_REASON = {"stratified": "keep:stratum", "hardest": "keep:hard", "easiest": "keep:easy", "random": "keep:random"}
@@ -50,14 +57,20 @@ class Selection:
     weight : ndarray of float64, shape (n,)
         Training weight of kept rows (0 on dropped rows); the weighted class shares of the kept
         rows equal the class shares of all ``n`` rows when ``weights`` is ``class_prior``.
+    dup_count : ndarray of int64, shape (n,)
+        Size of the row's exact-duplicate group (1 for a unique row).
+    conflict : ndarray of bool, shape (n,)
+        The row shares its features with a row of another label.
     info : dict
-        Budget, quotas per class, and any adjustment forced by the floors.
+        Budget, quotas per class, any adjustment forced by the floors, duplicate counts.
     """
 
     keep: np.ndarray
     reason: np.ndarray
     stratum: np.ndarray
     weight: np.ndarray
+    dup_count: np.ndarray
+    conflict: np.ndarray
     info: dict = field(default_factory=dict)
 
 
@@ -143,7 +156,42 @@ def _priority(d: np.ndarray, quota: int, config: SelectionConfig, rng: np.random
     return np.concatenate((order, cut)), stratum, n_cut
 
 
-def select(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, seed: int) -> Selection:
+def find_duplicates(X: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Exact duplicates (same features and label) and conflicts (same features, other labels).
+
+    Rows are compared by 64-bit hashes of their feature values (NaN equal to NaN).
+
+    Returns
+    -------
+    is_copy : ndarray of bool, shape (n,)
+        True for every duplicate but the first occurrence of its group.
+    dup_count : ndarray of int64, shape (n,)
+        Size of the row's duplicate group (1 for a unique row).
+    conflict : ndarray of bool, shape (n,)
+        True when another row has the same features and a different label.
+    """
+    features = pd.util.hash_pandas_object(pd.DataFrame(X), index=False).to_numpy()
+    pairs = pd.DataFrame({"x": features, "y": np.asarray(y)})
+    is_copy = pairs.duplicated(keep="first").to_numpy()
+    dup_count = pairs.groupby(["x", "y"], sort=False)["y"].transform("size").to_numpy(np.int64)
+    conflict = (pairs.groupby("x", sort=False)["y"].transform("nunique") > 1).to_numpy()
+    return is_copy, dup_count, conflict
+
+
+def _take_by_cell(order: np.ndarray, cells: np.ndarray, quota: int) -> np.ndarray:
+    """First rows of ``order`` giving each cell its proportional share of ``quota``."""
+    codes, counts = np.unique(cells[order], return_counts=True)
+    share = class_quotas(counts, quota, "proportional", 0)
+    pos = np.searchsorted(codes, cells[order])
+    rank = np.empty(len(order), np.int64)
+    by_cell = np.argsort(pos, kind="stable")
+    starts = np.searchsorted(pos[by_cell], pos[by_cell])
+    rank[by_cell] = np.arange(len(order)) - starts
+    return order[rank < share[pos]]
+
+
+def select(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, seed: int,
+           segments: np.ndarray | None = None, X: np.ndarray | None = None) -> Selection:
     """Decide which training rows to keep.
 
     Parameters
@@ -154,6 +202,11 @@ def select(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, seed:
         Class codes, 0..k-1.
     config : SelectionConfig
     seed : int
+    segments : ndarray of int, shape (n, s), optional
+        Segment codes: within each class the quota is shared among segments in proportion to
+        their size, and each segment value keeps at least ``min(n_v, segment_floor)`` rows.
+    X : ndarray, shape (n, f), optional
+        Features, to collapse exact duplicates when ``config.dedupe`` is on.
 
     Returns
     -------
@@ -161,42 +214,199 @@ def select(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, seed:
     """
     n = len(y)
     k = int(y.max()) + 1
-    counts = np.bincount(y, minlength=k)
+    all_counts = np.bincount(y, minlength=k)
+    if X is not None and config.dedupe:
+        is_copy, dup_count, conflict = find_duplicates(X, y)
+    else:
+        is_copy, dup_count, conflict = np.zeros(n, bool), np.ones(n, np.int64), np.zeros(n, bool)
+    pool = ~is_copy
+    counts = np.bincount(y[pool], minlength=k)
     budget = max(1, int(round(config.fraction * n)))
     quota = class_quotas(counts, budget, config.quotas, config.class_floor)
     unfloored = class_quotas(counts, budget, config.quotas, 0)
     rng = np.random.default_rng([seed, 0x5E1EC7])
+    cells = None if segments is None else np.unique(segments, axis=0, return_inverse=True)[1].ravel()
 
     keep = np.zeros(n, bool)
     reason = np.full(n, "drop:over_budget", dtype=object)
+    reason[is_copy] = "drop:duplicate"
     stratum = np.full(n, -1, np.int16)
+    rank = np.full(n, np.inf)  # position in its class's priority order, as a share of the class
     for c in range(k):
-        rows = np.flatnonzero(y == c)
+        rows = np.flatnonzero((y == c) & pool)
         if len(rows) == 0:  # a class code absent from y: nothing to order (its quota is 0)
             continue
         order, s, n_cut = _priority(difficulty[rows], int(quota[c]), config, rng)
         stratum[rows] = s
-        kept = rows[order[: quota[c]]]
+        rank[rows[order]] = np.arange(len(order)) / len(order)
+        candidates = order[: len(order) - n_cut]
+        kept = rows[candidates[: quota[c]] if cells is None else _take_by_cell(candidates, cells[rows], int(quota[c]))]
         keep[kept] = True
         reason[kept] = _KEEP_REASON[config.strategy]
-        reason[rows[order[min(unfloored[c], quota[c]): quota[c]]]] = "keep:floor"
+        extra = int(quota[c] - min(unfloored[c], quota[c]))
+        if extra:
+            reason[kept[np.argsort(rank[kept])[-extra:]]] = "keep:floor"
         if n_cut:
             reason[rows[order[len(order) - n_cut:]]] = "drop:hard_cut"
 
-    weight = np.zeros(n)
-    kept_counts = quota.astype(np.float64)
+    segment_added = 0
+    for j in range(0 if segments is None else segments.shape[1]):
+        for v in np.unique(segments[:, j]):
+            members = pool & (segments[:, j] == v)
+            need = min(int(members.sum()), config.segment_floor) - int((keep & members).sum())
+            if need > 0:
+                spare = np.flatnonzero(members & ~keep)
+                added = spare[np.argsort(rank[spare], kind="stable")[:need]]
+                keep[added] = True
+                reason[added] = "keep:floor"
+                segment_added += len(added)
+
+    kept_counts = np.bincount(y[keep], minlength=k).astype(np.float64)
     if config.weights == "class_prior":
         with np.errstate(divide="ignore", invalid="ignore"):
-            w = np.where(kept_counts > 0, counts * kept_counts.sum() / (n * kept_counts), 0.0)
+            w = np.where(kept_counts > 0, all_counts * kept_counts.sum() / (n * kept_counts), 0.0)
     else:
         w = np.ones(k)
+    weight = np.zeros(n)
     weight[keep] = w[y[keep]]
     info = {
         "budget": budget,
         "kept": int(keep.sum()),
-        "floor_adjustment": int(quota.sum() - budget),
+        "floor_adjustment": int(quota.sum() - min(budget, pool.sum())) + segment_added,
+        "segment_floor_added": segment_added,
         "quota": quota.tolist(),
-        "class_counts": counts.tolist(),
+        "class_counts": all_counts.tolist(),
         "class_weights": w.tolist(),
+        "duplicates_dropped": int(is_copy.sum()),
+        "conflicting_rows": int(conflict.sum()),
     }
-    return Selection(keep=keep, reason=reason, stratum=stratum, weight=weight, info=info)
+    return Selection(keep=keep, reason=reason, stratum=stratum, weight=weight,
+                     dup_count=dup_count, conflict=conflict, info=info)
+
+
+#: What a row dropped as a suspected label error holds in each per-row field of a Selection.
+_SUSPECT_FILL = {"keep": False, "reason": "drop:suspect_label", "stratum": -1, "weight": 0.0, "dup_count": 1, "conflict": False}
+
+
+def select_rows(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, seed: int,
+                suspect: np.ndarray | None = None, **per_row) -> Selection:
+    """:func:`select`, after setting aside suspected label errors when ``drop_suspect_labels`` is on.
+
+    Suspects are dropped with ``drop:suspect_label``; the others are selected with the fraction
+    raised so the budget stays ``round(fraction * n)`` of all ``n`` rows. ``per_row`` holds the
+    optional per-row arguments of :func:`select` (``segments``, ``X``).
+
+    Parameters
+    ----------
+    suspect : ndarray of bool, shape (n,), optional
+        ``suspect_label`` of each row (``Scores.table``).
+    """
+    if suspect is None or not config.drop_suspect_labels or not suspect.any():
+        return select(difficulty, y, config, seed, **per_row)
+    ok = ~suspect
+    n = len(y)
+    fraction = min(1.0, config.fraction * n / max(int(ok.sum()), 1))
+    sub = select(difficulty[ok], y[ok], config.model_copy(update={"fraction": fraction}), seed,
+                 **{k: None if v is None else v[ok] for k, v in per_row.items()})
+    fields = {}
+    for name, value in vars(sub).items():
+        if isinstance(value, np.ndarray) and len(value) == int(ok.sum()):
+            full = np.full(n, _SUSPECT_FILL[name], dtype=value.dtype)
+            full[ok] = value
+            fields[name] = full
+        else:
+            fields[name] = value
+    fields["info"] = {**sub.info, "suspect_dropped": int(suspect.sum())}
+    return Selection(**fields)
+
+
+# --- Stable decisions over a growing table -------------------------------------------------
+
+REASONS.update({
+    "keep:stable": "kept as in the parent run: its score stayed within selection.hysteresis",
+    "drop:stable": "dropped as in the parent run: its score stayed within selection.hysteresis",
+})
+
+
+def class_percentile(values: np.ndarray, groups: np.ndarray) -> np.ndarray:
+    """Percentile rank in (0, 1] of each value within its group (ties share their mean rank)."""
+    return pd.Series(np.asarray(values, np.float64)).groupby(np.asarray(groups)).rank(method="average", pct=True).to_numpy()
+
+
+def stabilise(fresh: Selection, difficulty: np.ndarray, y: np.ndarray, previous: np.ndarray,
+              previous_pct: np.ndarray, hysteresis: float, seed: int) -> Selection:
+    """Keep a parent run's decisions where a row's difficulty barely moved.
+
+    A training row that the parent run kept (dropped) stays kept (dropped) while its percentile
+    of difficulty within its class moved by at most ``hysteresis``. Each class keeps exactly as
+    many rows as ``fresh`` does, so quotas and weights are unchanged; the rows still needed are
+    taken from the rows ``fresh`` keeps, new rows first, then rows whose score moved, then rows
+    the parent dropped. When the stable rows alone exceed the quota, those ``fresh`` would drop
+    go first.
+
+    Parameters
+    ----------
+    fresh : Selection
+        The selection of this run without regard to the parent (from :func:`select`).
+    difficulty : ndarray of float, shape (n,)
+    y : ndarray of int, shape (n,)
+    previous : ndarray of int8, shape (n,)
+        1 where the parent run kept the row, 0 where it dropped it, -1 for a row new to this
+        run or in the parent's holdout.
+    previous_pct : ndarray of float, shape (n,)
+        The row's percentile of difficulty within its class in the parent run (NaN where
+        ``previous`` is -1).
+    hysteresis : float
+        The band, in percentile units (0.1 = ten percentiles).
+    seed : int
+
+    Returns
+    -------
+    Selection
+        ``info["stable"]`` counts the rows kept and dropped as before, the rows whose score
+        moved, and the new rows.
+    """
+    n = len(y)
+    rng = np.random.default_rng([seed, 0x57AB1E])
+    old = previous >= 0
+    moved = old & ~(np.abs(class_percentile(difficulty, y) - previous_pct) <= hysteresis)
+    # rows a filter drops (duplicates, suspected label errors) are never kept for stability
+    eligible = fresh.keep | np.isin(fresh.reason, ("drop:over_budget", "drop:hard_cut"))
+    sticky_keep = old & ~moved & (previous == 1) & eligible
+    sticky_drop = old & ~moved & (previous == 0)
+    fk = fresh.keep
+    keep = np.zeros(n, bool)
+    for c in np.unique(y):
+        rows = np.flatnonzero(y == c)
+        quota = int(fk[rows].sum())
+        tie = rng.random(len(rows))
+        chosen = rows[sticky_keep[rows]]
+        if len(chosen) > quota:
+            # fresh-dropped rows leave first (False sorts before True), ties at random
+            local = np.flatnonzero(sticky_keep[rows])
+            order = np.lexsort((tie[local], ~fk[rows][local]))
+            chosen = rows[local[order[:quota]]]
+        else:
+            local = np.flatnonzero(fk[rows] & ~sticky_keep[rows])
+            tier = np.where(~old[rows][local], 0, np.where(moved[rows][local], 1, 2))
+            order = np.lexsort((tie[local], tier))
+            chosen = np.concatenate((chosen, rows[local[order[: quota - len(chosen)]]]))
+        keep[chosen] = True
+
+    reason = fresh.reason.copy()
+    reason[keep & ~fk] = "keep:stable"
+    reason[~keep & fk] = "drop:over_budget"
+    reason[~keep & fk & sticky_drop] = "drop:stable"
+    weight = np.zeros(n)
+    weight[keep & fk] = fresh.weight[keep & fk]
+    for c in np.unique(y[keep & ~fk]):
+        in_c = y == c
+        weight[keep & ~fk & in_c] = fresh.weight[fk & in_c].mean()
+    info = {**fresh.info, "kept": int(keep.sum()), "stable": {
+        "hysteresis": hysteresis,
+        "kept_as_before": int((keep & sticky_keep).sum()),
+        "dropped_as_before": int((~keep & sticky_drop).sum()),
+        "moved": int(moved.sum()),
+        "new": int((~old).sum()),
+    }}
+    return replace(fresh, keep=keep, reason=reason, weight=weight, info=info)

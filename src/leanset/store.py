@@ -16,30 +16,44 @@ import os
 import platform
 import shutil
 import time
+from dataclasses import dataclass
 from datetime import datetime, timezone
 from importlib import metadata
 from pathlib import Path
-from typing import Any, Iterator
+from typing import TYPE_CHECKING, Any, Iterator
 
 import numpy as np
+import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
 from .config import SCORE_NAMES, Config
 from .errors import StoreError
-from .scores import Scores
-from .select import Selection
-from .table import RowFrame
-from .verify import Verdict
+from .select import Selection, class_percentile
+
+if TYPE_CHECKING:  # the audit commands import this module: keep the model libraries out of their start-up
+    from .scores import Scores
+    from .table import RowFrame
+    from .verify import Verdict
 
 PACKAGES = ("leanset", "numpy", "pandas", "pyarrow", "scikit-learn", "lightgbm", "scipy", "prefect", "pydantic")
 
 
 @contextlib.contextmanager
 def store_lock(store: Path, wait: float = 0.0) -> Iterator[None]:
-    """Hold the store's write lock, waiting up to ``wait`` seconds for another run to finish."""
+    """Hold the store's write lock, waiting up to ``wait`` seconds for another run to finish.
+
+    The lock file names its holder (pid, host, start time) for the refusal message; the lock
+    itself is the kernel's ``flock``, released when the holder exits or is killed.
+
+    Raises
+    ------
+    StoreError
+        When another process still holds the lock after ``wait`` seconds.
+    """
     store.mkdir(parents=True, exist_ok=True)
-    with open(store / ".lock", "a") as handle:
+    path = store / ".lock"
+    with open(path, "a+") as handle:
         deadline = time.monotonic() + wait
         while True:
             try:
@@ -47,11 +61,20 @@ def store_lock(store: Path, wait: float = 0.0) -> Iterator[None]:
                 break
             except BlockingIOError:
                 if time.monotonic() >= deadline:
-                    raise StoreError(f"{store}: another leanset run is writing this store; wait for it to finish or pass another --store") from None
+                    holder = path.read_text().strip() or "another process"
+                    raise StoreError(f"{store}: another leanset run holds this store ({holder}); waited {wait:g} s; "
+                                     "pass a larger --wait, wait for it to finish, or pass another --store") from None
                 time.sleep(0.2)
         try:
+            handle.seek(0)
+            handle.truncate()
+            handle.write(f"pid {os.getpid()} on {platform.node()} since {datetime.now(timezone.utc).isoformat(timespec='seconds')}\n")
+            handle.flush()
             yield
         finally:
+            handle.seek(0)
+            handle.truncate()
+            handle.flush()
             fcntl.flock(handle, fcntl.LOCK_UN)
 
 
@@ -72,6 +95,115 @@ def new_run_id(config: Config, fingerprint: str) -> str:
     return f"{stamp}-{hashlib.sha256((config.section_hash() + fingerprint).encode()).hexdigest()[:8]}"
 
 
+def lineage(config: Config) -> str:
+    """Hash of the config but ``store`` and ``selection.fraction``: the runs of one lineage form one history.
+
+    The fraction is left out so that a run whose fraction was searched (``auto``) or changed
+    still links to its parent; its quotas change and :func:`leanset.select.stabilise` follows them.
+    """
+    data = config.model_dump(mode="json")
+    data.pop("store")
+    data["selection"].pop("fraction")
+    return hashlib.sha256(json.dumps(data, sort_keys=True).encode()).hexdigest()[:16]
+
+
+def published_runs(store: Path) -> list[dict[str, Any]]:
+    """The run.json of every published run in ``store``, in publication order.
+
+    Hidden folders (runs being written, or left by a crash) are not runs.
+    """
+    runs = Path(store) / "runs"
+    found = []
+    if runs.is_dir():
+        for d in runs.iterdir():
+            if not d.name.startswith(".") and (d / "run.json").is_file() and (d / "manifest.parquet").is_file():
+                found.append(json.loads((d / "run.json").read_text()))
+    return sorted(found, key=lambda r: (r.get("sequence", 0), r["run_id"]))
+
+
+@dataclass(frozen=True)
+class ParentRun:
+    """What a run needs from the last run of its lineage: each row's decision and percentile.
+
+    Attributes
+    ----------
+    run_id : str
+    row_id : ndarray of str, shape (m,)
+    decision : ndarray of str, shape (m,)
+        ``keep``, ``drop`` or ``holdout``.
+    percentile : ndarray of float, shape (m,)
+        Percentile of the selection score's difficulty within the row's class, among the
+        parent's training rows (NaN on holdout rows).
+    """
+
+    run_id: str
+    row_id: np.ndarray
+    decision: np.ndarray
+    percentile: np.ndarray
+
+    def align(self, row_id: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Previous decision (1 keep, 0 drop, -1 holdout or absent) and percentile of each of ``row_id``."""
+        at = pd.Index(self.row_id).get_indexer(pd.Index(row_id))
+        found = at >= 0
+        code = np.full(len(row_id), -1, np.int8)
+        pct = np.full(len(row_id), np.nan)
+        d = self.decision[at[found]]
+        code[found] = np.where(d == "keep", 1, np.where(d == "drop", 0, -1))
+        pct[found] = self.percentile[at[found]]
+        return code, pct
+
+
+def read_parent(config: Config) -> ParentRun | None:
+    """The last published run of this config's lineage in its store, or None."""
+    from .scores import DIFFICULTY_SIGN
+
+    mine = lineage(config)
+    runs = [r for r in published_runs(config.store) if r.get("lineage") == mine]
+    if not runs:
+        return None
+    run_id = runs[-1]["run_id"]
+    name = config.selection.score
+    m = pq.read_table(config.store / "runs" / run_id / "manifest.parquet",
+                      columns=["row_id", "label", "decision", name]).to_pandas()
+    train = (m["decision"] != "holdout").to_numpy()
+    pct = np.full(len(m), np.nan)
+    pct[train] = class_percentile(DIFFICULTY_SIGN[name] * m[name].to_numpy(np.float64)[train], m["label"].to_numpy()[train])
+    return ParentRun(run_id=run_id, row_id=m["row_id"].to_numpy(object), decision=m["decision"].to_numpy(object), percentile=pct)
+
+
+def churn(manifest: pa.Table, parent: ParentRun) -> dict[str, Any]:
+    """Rows of ``manifest`` whose decision differs from the parent run's, and the new and removed rows.
+
+    ``rows`` / ``fraction`` count every change of decision (keep, drop, holdout) among the rows
+    present in both runs; ``keep_to_drop`` and ``drop_to_keep`` split the changes between training rows.
+    """
+    now = manifest.column("decision").to_numpy(zero_copy_only=False)
+    at = pd.Index(parent.row_id).get_indexer(pd.Index(manifest.column("row_id").to_numpy(zero_copy_only=False)))
+    both = at >= 0
+    before = parent.decision[at[both]]
+    after = now[both]
+    flipped = before != after
+    n_both = int(both.sum())
+    return {
+        "parent_run": parent.run_id,
+        "rows": int(flipped.sum()),
+        "fraction": float(flipped.sum() / n_both) if n_both else 0.0,
+        "rows_in_both": n_both,
+        "keep_to_drop": int(((before == "keep") & (after == "drop")).sum()),
+        "drop_to_keep": int(((before == "drop") & (after == "keep")).sum()),
+        "new_rows": int((~both).sum()),
+        "removed_rows": int(len(parent.row_id) - n_both),
+    }
+
+
+def _spread(values: np.ndarray, train: np.ndarray, n: int) -> np.ndarray:
+    """Values of the training rows placed at their positions among all ``n`` rows (zeros elsewhere)."""
+    values = np.asarray(values)
+    full = np.zeros(n, dtype=values.dtype)
+    full[train] = values
+    return full
+
+
 def manifest_table(frame: RowFrame, scores: Scores, selection: Selection) -> pa.Table:
     """One row per input row, in input order: id, split, label, decision, reason, stratum, weight, scores."""
     n = len(frame.row_id)
@@ -80,25 +212,25 @@ def manifest_table(frame: RowFrame, scores: Scores, selection: Selection) -> pa.
     decision[train] = np.where(selection.keep, "keep", "drop")
     reason = np.full(n, "holdout", dtype=object)
     reason[train] = selection.reason
-    stratum = np.full(n, -1, np.int16)
-    stratum[train] = selection.stratum
-    weight = np.zeros(n)
-    weight[train] = selection.weight
     mask = frame.holdout
     cols: dict[str, pa.Array] = {
         "row_id": pa.array(frame.row_id, pa.string()),
         "split": pa.array(np.where(mask, "holdout", "train"), pa.string()),
-        "label": pa.array([str(c) for c in frame.classes], pa.string()).take(pa.array(frame.y)),
+        "label": (pa.array(frame.y).cast(pa.string()) if frame.task == "regression"
+                  else pa.array([str(c) for c in frame.classes], pa.string()).take(pa.array(frame.y))),
         "decision": pa.array(decision, pa.string()),
         "reason": pa.array(reason, pa.string()),
-        "stratum": pa.array(stratum, pa.int16(), mask=mask),
-        "weight": pa.array(weight, pa.float64(), mask=mask),
+        "stratum": pa.array(_spread(selection.stratum, train, n), pa.int16(), mask=mask),
+        "weight": pa.array(_spread(selection.weight, train, n), pa.float64(), mask=mask),
+        "dup_count": pa.array(_spread(selection.dup_count, train, n), pa.int64(), mask=mask),
+        "conflict": pa.array(_spread(selection.conflict, train, n), pa.bool_(), mask=mask),
     }
     for name in (*SCORE_NAMES, "never_learned"):
-        values = scores.table[name].to_numpy()
-        full = np.zeros(n, dtype=values.dtype)
-        full[train] = values
-        cols[name] = pa.array(full, mask=mask)
+        cols[name] = pa.array(_spread(scores.table[name].to_numpy(), train, n), mask=mask)
+    # null where the AUM threshold-sample passes did not judge the row (off, or regression)
+    suspect = scores.table["suspect_label"]
+    cols["suspect_label"] = pa.array(_spread(suspect.fillna(False).to_numpy(bool), train, n),
+                                     mask=mask | _spread(suspect.isna().to_numpy(), train, n))
     return pa.table(cols)
 
 
@@ -119,58 +251,93 @@ def _write_json(path: Path, data: dict[str, Any]) -> None:
 
 
 def write_run(frame: RowFrame, scores: Scores, selection: Selection, verdict: Verdict,
-              config: Config, timings: dict[str, float], wait: float = 0.0) -> Path:
+              config: Config, timings: dict[str, float], wait: float = 0.0,
+              parent: ParentRun | None = None, locked: bool = False,
+              extra: dict[str, Any] | None = None, files: dict[str, bytes] | None = None) -> Path:
     """Write the run directory and rename it into place; return its path.
+
+    Parameters
+    ----------
+    parent : ParentRun, optional
+        The last run of this lineage; when given, run.json records ``parent_run`` and ``churn``.
+    locked : bool
+        True when the caller already holds the store lock (the flows hold it for the whole run).
+    extra : dict, optional
+        More top-level entries for run.json (``search``, ``frontier``).
+    files : dict of str to bytes, optional
+        More files for the run directory, by name.
 
     Raises
     ------
     StoreError
         When the store is locked by another run or the conservation check fails.
     """
+    with contextlib.nullcontext() if locked else store_lock(config.store, wait):
+        return _write_locked(frame, scores, selection, verdict, config, timings, parent, extra or {}, files or {})
+
+
+def _write_locked(frame, scores, selection, verdict, config, timings, parent, extra, files) -> Path:
+    from .report_html import render_html
+
     t0 = time.perf_counter()
     runs = config.store / "runs"
-    with store_lock(config.store, wait):
-        runs.mkdir(parents=True, exist_ok=True)
-        for stale in runs.glob(".tmp-*"):
-            shutil.rmtree(stale, ignore_errors=True)
-        run_id = new_run_id(config, frame.fingerprint)
-        while (runs / run_id).exists():
-            run_id += "x"
-        tmp = runs / f".tmp-{run_id}"
-        tmp.mkdir()
-        try:
-            manifest = manifest_table(frame, scores, selection)
-            counts = check_conservation(manifest, len(frame.row_id))
-            pq.write_table(manifest, tmp / "manifest.parquet")
-            kept_rows = frame.train[selection.keep]
-            kept = frame.source.take(pa.array(kept_rows)).append_column(
-                "weight", pa.array(selection.weight[selection.keep], pa.float64()))
-            pq.write_table(kept, tmp / "kept.parquet")
-            models = tmp / "models"
-            models.mkdir()
-            for k, proxy in enumerate(scores.proxies):
-                (models / f"proxy_fold{k}.{'txt' if proxy.family == 'gbdt' else 'json'}").write_text(proxy.to_text())
-            for name, target in verdict.models.items():
-                if target.booster is not None:
-                    target.booster.save_model(str(models / f"target_{name}.txt"))
-            timings = {**timings, "write": round(time.perf_counter() - t0, 3)}
-            _write_json(tmp / "run.json", {
-                "run_id": run_id,
-                "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
-                "config": config.model_dump(mode="json"),
-                "config_hash": config.section_hash(),
-                "input": {"path": str(config.input.path), "fingerprint": frame.fingerprint, "rows": len(frame.row_id),
-                          "classes": [str(c) for c in frame.classes]},
-                "counts": {"train": int(len(frame.train)), "holdout": counts["holdout"],
-                           "kept": counts["keep"], "dropped": counts["drop"]},
-                "selection": selection.info,
-                "verdict": verdict.to_dict(),
-                "timings": timings,
-                "seed": config.seed,
-                "versions": versions(),
-            })
-            os.rename(tmp, runs / run_id)
-        except BaseException:
-            shutil.rmtree(tmp, ignore_errors=True)
-            raise
+    runs.mkdir(parents=True, exist_ok=True)
+    for stale in runs.glob(".tmp-*"):
+        shutil.rmtree(stale, ignore_errors=True)
+    previous = published_runs(config.store)
+    run_id = new_run_id(config, frame.fingerprint)
+    while (runs / run_id).exists():
+        run_id += "x"
+    tmp = runs / f".tmp-{run_id}"
+    tmp.mkdir()
+    try:
+        manifest = manifest_table(frame, scores, selection)
+        counts = check_conservation(manifest, len(frame.row_id))
+        pq.write_table(manifest, tmp / "manifest.parquet")
+        kept_rows = frame.train[selection.keep]
+        kept = frame.source.take(pa.array(kept_rows)).append_column(
+            "weight", pa.array(selection.weight[selection.keep], pa.float64())).append_column(
+            "dup_count", pa.array(selection.dup_count[selection.keep], pa.int64()))
+        pq.write_table(kept, tmp / "kept.parquet")
+        models = tmp / "models"
+        models.mkdir()
+        for k, proxy in enumerate(scores.proxies):
+            (models / f"proxy_fold{k}.{'txt' if proxy.family == 'gbdt' else 'json'}").write_text(proxy.to_text())
+        for name, target in verdict.models.items():
+            if target.booster is not None:
+                target.booster.save_model(str(models / f"target_{name}.txt"))
+        moved = churn(manifest, parent) if parent is not None else None
+        run = {
+            "run_id": run_id,
+            "sequence": 1 + max((r.get("sequence", 0) for r in previous), default=0),
+            "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+            "config": config.model_dump(mode="json"),
+            "config_hash": config.section_hash(),
+            "lineage": lineage(config),
+            "parent_run": parent.run_id if parent is not None else None,
+            "input": {"path": str(config.input.path), "fingerprint": frame.fingerprint, "rows": len(frame.row_id),
+                      "classes": [str(c) for c in frame.classes]},
+            "counts": {"train": int(len(frame.train)), "holdout": counts["holdout"],
+                       "kept": counts["keep"], "dropped": counts["drop"],
+                       "new": moved["new_rows"] if moved else len(frame.row_id)},
+            "churn": moved,
+            "selection": selection.info,
+            "scores": {k: v for k, v in scores.info.items() if k != "agreement"},
+            "agreement": scores.info.get("agreement"),
+            "verdict": verdict.to_dict(),
+            "timings": timings,
+            "seed": config.seed,
+            "versions": versions(),
+            **extra,
+        }
+        for name, data in files.items():
+            (tmp / name).write_bytes(data)
+        segments = {name: frame.source.column(name).to_numpy(zero_copy_only=False) for name in config.input.segments}
+        (tmp / "report.html").write_text(render_html(run, manifest, segments))
+        run["timings"] = {**timings, "write": round(time.perf_counter() - t0, 3)}
+        _write_json(tmp / "run.json", run)
+        os.rename(tmp, runs / run_id)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
     return runs / run_id

@@ -17,8 +17,8 @@ import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 import pyarrow.dataset as ds
 
-from .config import Config
-from .errors import InputError
+from .config import REGRESSION_METRICS, Config
+from .errors import ConfigError, InputError
 
 #: Columns leanset adds to its outputs; an input column of the same name would be shadowed.
 RESERVED = ("weight",)
@@ -32,9 +32,9 @@ class RowFrame:
     ----------
     row_id : ndarray of str, shape (n,)
     y : ndarray of int32, shape (n,)
-        Label codes, indices into ``classes``.
+        Label codes, indices into ``classes``; float64 label values on a regression table.
     classes : list
-        The label values, sorted.
+        The label values, sorted; empty on a regression table.
     X : ndarray of float32, shape (n, n_features)
         Numeric features as given, categorical features as integer codes (NaN for missing).
     feature_names : list of str
@@ -47,6 +47,12 @@ class RowFrame:
         Cross-fitting fold of each training row, -1 on holdout rows.
     fingerprint : str
         Hash of the schema and the content of every row, in order.
+    segments : ndarray of int32, shape (n, len(segment_names)), optional
+        Codes of the ``input.segments`` columns (missing values form their own code).
+    task : str
+        ``classification`` or ``regression``.
+    bins : ndarray of int32, shape (n,), optional
+        Label-quantile bin of each row on a regression table, standing in for classes.
     source : pyarrow.Table
         The original columns (plus ``row_id`` when it was derived), for writing kept rows.
     """
@@ -62,6 +68,15 @@ class RowFrame:
     fold: np.ndarray
     fingerprint: str
     source: pa.Table
+    segments: np.ndarray | None = None
+    segment_names: tuple[str, ...] = ()
+    task: str = "classification"
+    bins: np.ndarray | None = None
+
+    @property
+    def groups(self) -> np.ndarray:
+        """Codes that stratify the holdout, folds and quotas: the class, or the label-quantile bin (regression)."""
+        return self.y if self.bins is None else self.bins
 
     @property
     def train(self) -> np.ndarray:
@@ -106,23 +121,23 @@ def _feature_columns(schema: pa.Schema, config: Config, path: Path) -> tuple[lis
             categorical.append(name)
         else:
             raise InputError(f"{path}: feature column '{name}' has unsupported type {t}; convert it to a number or a string, or add it to input.exclude")
+    absent = [n for n in inp.segments if n not in schema.names]
+    if absent:
+        raise InputError(f"{path}: segment column '{absent[0]}' listed in input.segments is not in the table; fix input.segments")
     if not numeric and not categorical:
         raise InputError(f"{path}: no feature columns besides the label and id; add feature columns or fix input.features")
     return numeric, categorical
 
 
-def _check_label_and_id(table: pa.Table, config: Config, path: Path) -> None:
+def _check_classes(label, config: Config, path: Path) -> None:
     inp = config.input
-    if inp.label not in table.column_names:
-        raise InputError(f"{path}: label column '{inp.label}' not found (columns: {', '.join(table.column_names[:20])}); fix input.label")
-    label = table.column(inp.label)
-    if label.null_count:
-        raise InputError(f"{path}: label column '{inp.label}' has {label.null_count} missing values; fill or drop those rows")
+    if config.verify.metric in REGRESSION_METRICS:
+        raise ConfigError(f"verify.metric: {config.verify.metric} is a regression metric but '{inp.label}' holds classes; use a classification metric, or set input.task: regression")
     t = label.type
     if pa.types.is_floating(t):
         vals = label.to_numpy()
         if not np.all(np.isfinite(vals)) or not np.all(vals == np.round(vals)):
-            raise InputError(f"{path}: label column '{inp.label}' holds continuous values; leanset classifies, so give it class labels")
+            raise InputError(f"{path}: label column '{inp.label}' holds continuous values; set input.task: regression, or give it class labels")
     elif not (pa.types.is_integer(t) or pa.types.is_boolean(t) or pa.types.is_string(t) or pa.types.is_large_string(t) or pa.types.is_dictionary(t)):
         raise InputError(f"{path}: label column '{inp.label}' has unsupported type {t}; give it string, integer or boolean class labels")
     counts = pc.value_counts(label.combine_chunks() if not pa.types.is_dictionary(t) else label.cast(pa.string()).combine_chunks())
@@ -134,6 +149,19 @@ def _check_label_and_id(table: pa.Table, config: Config, path: Path) -> None:
     if small:
         v, n = small[0]
         raise InputError(f"{path}: class {v!r} of '{inp.label}' has {n} rows; it needs at least {need} (1 for the holdout, {config.proxy.folds} for the proxy folds); drop or merge it, or lower proxy.folds")
+
+
+def _check_label_and_id(table: pa.Table, config: Config, path: Path) -> None:
+    inp = config.input
+    if inp.label not in table.column_names:
+        raise InputError(f"{path}: label column '{inp.label}' not found (columns: {', '.join(table.column_names[:20])}); fix input.label")
+    label = table.column(inp.label)
+    if label.null_count:
+        raise InputError(f"{path}: label column '{inp.label}' has {label.null_count} missing values; fill or drop those rows")
+    if task(table, config) == "regression":
+        _check_continuous_label(label, config, path)
+    else:
+        _check_classes(label, config, path)
     if inp.id is not None:
         if inp.id not in table.column_names:
             raise InputError(f"{path}: id column '{inp.id}' not found; fix input.id or remove it to derive row ids")
@@ -147,6 +175,43 @@ def _check_label_and_id(table: pa.Table, config: Config, path: Path) -> None:
     for name in RESERVED:
         if name in table.column_names and name != inp.label:
             raise InputError(f"{path}: column '{name}' clashes with the column leanset writes into kept rows; rename it or add it to input.exclude after renaming")
+
+
+#: Label-quantile bins that stand in for classes on a regression table (holdout, folds, quotas).
+LABEL_BINS = 10
+
+
+def task(table: pa.Table, config: Config) -> str:
+    """``input.task``, or when ``auto``: regression for a float label holding non-integer values."""
+    if config.input.task != "auto":
+        return config.input.task
+    label = table.column(config.input.label)
+    if not pa.types.is_floating(label.type):
+        return "classification"
+    vals = label.to_numpy()
+    return "regression" if np.any(np.isfinite(vals) & (vals != np.round(vals))) else "classification"
+
+
+def _check_continuous_label(label, config: Config, path: Path) -> None:
+    t = label.type
+    if not (pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t)):
+        raise InputError(f"{path}: label column '{config.input.label}' has type {t}; input.task regression needs a numeric label")
+    if not np.all(np.isfinite(label.to_numpy().astype(np.float64))):
+        raise InputError(f"{path}: label column '{config.input.label}' has infinite or NaN values; fill or drop those rows")
+    need = LABEL_BINS * (config.proxy.folds + 1)
+    if len(label) < need:
+        raise InputError(f"{path}: regression label '{config.input.label}' has {len(label)} rows; it needs at least {need} ({LABEL_BINS} label-quantile bins, each split into a holdout and {config.proxy.folds} proxy folds); lower proxy.folds")
+    if config.selection.score in ("confidence", "aleatoric"):
+        raise ConfigError(f"selection.score: {config.selection.score} has no regression analogue; use aum, el2n, forgetting, correctness, variability, oof_loss or oof_margin")
+    metric = config.verify.metric
+    if metric not in REGRESSION_METRICS and "metric" in config.verify.model_fields_set:
+        raise ConfigError(f"verify.metric: {metric} is a classification metric but '{config.input.label}' is a regression label; use rmse, mae or r2")
+
+
+def label_bins(y: np.ndarray, bins: int = LABEL_BINS) -> np.ndarray:
+    """Quantile bin (0..bins-1) of each continuous label value, ties kept together."""
+    ranks = pd.Series(y).rank(method="min").to_numpy()
+    return np.minimum(((ranks - 1) * bins / len(y)).astype(np.int32), bins - 1)
 
 
 def check_input(config: Config) -> None:
@@ -193,6 +258,13 @@ def _split(row_id: np.ndarray, y: np.ndarray, fraction: float, folds: int, seed:
     return holdout, fold
 
 
+def _segment_codes(table: pa.Table, names: list[str], path: Path) -> np.ndarray | None:
+    if not names:
+        return None
+    codes = [pd.factorize(table.column(n).to_pandas(), use_na_sentinel=False, sort=True)[0] for n in names]
+    return np.column_stack(codes).astype(np.int32)
+
+
 def load_table(config: Config) -> RowFrame:
     """Read and check the configured table and turn it into a :class:`RowFrame`.
 
@@ -220,8 +292,14 @@ def load_table(config: Config) -> RowFrame:
         source = table
 
     label = df[inp.label]
-    classes = sorted(label.unique().tolist(), key=lambda v: (str(type(v)), v))
-    y = pd.Categorical(label, categories=classes).codes.astype(np.int32)
+    kind = task(table, config)
+    if kind == "regression":
+        classes, y = [], label.to_numpy(np.float64)
+        bins = label_bins(y)
+    else:
+        classes = sorted(label.unique().tolist(), key=lambda v: (str(type(v)), v))
+        y = pd.Categorical(label, categories=classes).codes.astype(np.int32)
+        bins = None
 
     X = np.empty((len(df), len(numeric) + len(categorical)), dtype=np.float32)
     for j, name in enumerate(numeric):
@@ -234,11 +312,13 @@ def load_table(config: Config) -> RowFrame:
         codes[codes < 0] = np.nan
         X[:, j] = codes
 
-    holdout, fold = _split(row_id, y, config.holdout.fraction, config.proxy.folds, config.seed)
+    holdout, fold = _split(row_id, y if bins is None else bins, config.holdout.fraction, config.proxy.folds, config.seed)
     return RowFrame(
         row_id=row_id, y=y, classes=classes, X=X,
         feature_names=numeric + categorical,
         categorical=list(range(len(numeric), len(numeric) + len(categorical))),
         categories=categories, holdout=holdout, fold=fold,
         fingerprint=fingerprint, source=source,
+        segments=_segment_codes(table, config.input.segments, path), segment_names=tuple(config.input.segments),
+        task=kind, bins=bins,
     )

@@ -19,7 +19,7 @@ import numpy as np
 from scipy import stats
 from sklearn import metrics
 
-from .config import TargetConfig, VerifyConfig
+from .config import REGRESSION_METRICS, TargetConfig, VerifyConfig
 from .errors import ConfigError
 
 LIGHTGBM_DEFAULTS: dict[str, Any] = {
@@ -28,11 +28,28 @@ LIGHTGBM_DEFAULTS: dict[str, Any] = {
 }
 LIGHTGBM_ROUNDS = 300
 #: +1 when higher is better.
-ORIENTATION = {"accuracy": 1, "balanced_accuracy": 1, "macro_f1": 1, "roc_auc": 1, "log_loss": -1}
+ORIENTATION = {"accuracy": 1, "balanced_accuracy": 1, "macro_f1": 1, "roc_auc": 1, "log_loss": -1,
+               "rmse": -1, "mae": -1, "r2": 1}
+
+
+def regression_metric(name: str, y: np.ndarray, pred: np.ndarray) -> float:
+    """``rmse``, ``mae`` or ``r2`` of predicted values ``pred`` (n,) against ``y``, via sklearn.metrics."""
+    if name == "rmse":
+        return float(np.sqrt(metrics.mean_squared_error(y, pred)))
+    if name == "mae":
+        return float(metrics.mean_absolute_error(y, pred))
+    if name == "r2":
+        return float(metrics.r2_score(y, pred))
+    raise ConfigError(f"verify.metric: {name} is a classification metric but the label is a regression label; use rmse, mae or r2")
 
 
 def metric_value(name: str, y: np.ndarray, proba: np.ndarray) -> float:
-    """The named metric of class probabilities ``proba`` (n, k) against labels ``y``, via sklearn.metrics."""
+    """The named metric of class probabilities ``proba`` (n, k) against labels ``y``, via sklearn.metrics.
+
+    A 1-D ``proba`` holds a regression target's predicted values (see :func:`regression_metric`).
+    """
+    if proba.ndim == 1:
+        return regression_metric(name, y, proba)
     k = proba.shape[1]
     if name == "log_loss":
         return float(metrics.log_loss(y, np.clip(proba, 1e-15, 1.0), labels=np.arange(k)))
@@ -52,6 +69,7 @@ def metric_value(name: str, y: np.ndarray, proba: np.ndarray) -> float:
 
 def _resamples(y: np.ndarray, n_resamples: int, rng: np.random.Generator, stratify: bool):
     """Bootstrap row indices; stratified by class, each class keeps its count in every resample."""
+    stratify = stratify and y.dtype.kind != "f"  # float labels are regression values, not classes
     groups = [np.flatnonzero(y == c) for c in np.unique(y)] if stratify else [np.arange(len(y))]
     for _ in range(n_resamples):
         yield np.concatenate([g[rng.integers(0, len(g), len(g))] for g in groups])
@@ -108,7 +126,9 @@ class FittedTarget:
     estimator: Any = None
 
     def predict_proba(self, X: np.ndarray) -> np.ndarray:
-        """Class probabilities, shape (n, n_classes), columns in class-code order."""
+        """Class probabilities, shape (n, n_classes), columns in class-code order; predicted values (n,) for regression."""
+        if self.n_classes == 0:
+            return (self.booster if self.booster is not None else self.estimator).predict(X).astype(np.float64)
         if self.booster is not None:
             p = self.booster.predict(X)
             return np.column_stack((1 - p, p)) if p.ndim == 1 else p
@@ -144,25 +164,141 @@ def fit_target(X: np.ndarray, y: np.ndarray, weight: np.ndarray | None, n_classe
     params = {**LIGHTGBM_DEFAULTS, **config.params, "seed": seed}
     rounds = int(params.pop("num_boost_round", params.pop("n_estimators", LIGHTGBM_ROUNDS)))
     params.update({"objective": "multiclass", "num_class": n_classes} if n_classes > 2 else {"objective": "binary"})
+    if n_classes == 0:
+        params = {k: v for k, v in params.items() if k != "num_class"} | {"objective": "regression"}
     data = lgb.Dataset(X, label=y, weight=weight, categorical_feature=categorical or "auto")
     return FittedTarget(n_classes, booster=lgb.train(params, data, num_boost_round=rounds))
 
 
 @dataclass
+class Comparison:
+    """Δ between two models' holdout predictions, with its interval and the class and segment guards."""
+
+    status: str
+    delta: float
+    ci: tuple[float, float]
+    per_class_recall: dict[str, dict[str, Any]]
+    failed_classes: list[str]
+    per_segment: dict[str, dict[str, Any]]
+    failed_segments: list[str]
+    mcnemar: dict[str, float]
+
+
+def _safe_metric(name: str, y: np.ndarray, proba: np.ndarray) -> float:
+    try:
+        return metric_value(name, y, proba)
+    except ValueError:  # e.g. roc_auc on a segment that holds one class
+        return float("nan")
+
+
+def compare(y_hold: np.ndarray, proba_full: np.ndarray, proba_kept: np.ndarray, classes: list,
+            config: VerifyConfig, rng: np.random.Generator, segments: np.ndarray | None = None,
+            segment_names: tuple[str, ...] = ()) -> Comparison:
+    """Judge the kept-row model against the full-data model on the holdout.
+
+    Parameters
+    ----------
+    y_hold : ndarray of int, shape (m,)
+    proba_full, proba_kept : ndarray, shape (m, k)
+    classes : list
+        Label values, for naming per-class results.
+    config : VerifyConfig
+    rng : numpy.random.Generator
+    segments : ndarray of int, shape (m, s), optional
+        Segment codes of the holdout rows; each segment value's Δ must stay within
+        ``segment_tolerance``.
+    segment_names : tuple of str
+
+    Returns
+    -------
+    Comparison
+    """
+    m, k = config.metric, len(classes)
+    delta = ORIENTATION[m] * (metric_value(m, y_hold, proba_full) - metric_value(m, y_hold, proba_kept))
+    lo, hi = paired_bootstrap(y_hold, proba_full, proba_kept, m, config.bootstrap, config.confidence, rng)
+    recall, failed, guards_clear, mc = {}, [], True, None  # regression: no classes to guard, no McNemar
+    if proba_full.ndim == 2:
+        hit_full, hit_kept = proba_full.argmax(axis=1) == y_hold, proba_kept.argmax(axis=1) == y_hold
+        drop, c_lo, c_hi = recall_drop(y_hold, hit_full, hit_kept, k, config.bootstrap, config.confidence, rng)
+        for c in range(k):
+            rows = y_hold == c
+            recall[str(classes[c])] = {"full": float(hit_full[rows].mean()), "kept": float(hit_kept[rows].mean()),
+                                       "drop": float(drop[c]), "ci": [float(c_lo[c]), float(c_hi[c])]}
+        failed = [str(classes[c]) for c in range(k) if c_lo[c] > config.class_tolerance]
+        guards_clear = bool(np.all(c_hi <= config.class_tolerance))
+        mc = mcnemar_exact(hit_full, hit_kept)
+
+    per_segment, failed_segments = {}, []
+    for j, column in enumerate(segment_names):
+        for v in np.unique(segments[:, j]):
+            rows = segments[:, j] == v
+            key = f"{column}={v}"
+            d = ORIENTATION[m] * (_safe_metric(m, y_hold[rows], proba_full[rows]) - _safe_metric(m, y_hold[rows], proba_kept[rows]))
+            if not np.isfinite(d):
+                per_segment[key] = {"rows": int(rows.sum()), "delta": None, "ci": None}
+                continue
+            s_lo, s_hi = paired_bootstrap(y_hold[rows], proba_full[rows], proba_kept[rows], m,
+                                          config.bootstrap, config.confidence, rng)
+            per_segment[key] = {"rows": int(rows.sum()), "delta": float(d), "ci": [s_lo, s_hi]}
+            if s_lo > config.segment_tolerance:
+                failed_segments.append(key)
+            guards_clear &= s_hi <= config.segment_tolerance
+
+    if lo > config.tolerance or failed or failed_segments:
+        status = "fail"
+    elif hi <= config.tolerance and guards_clear:
+        status = "pass"
+    else:
+        status = "inconclusive"
+    return Comparison(status=status, delta=float(delta), ci=(lo, hi), per_class_recall=recall, failed_classes=failed,
+                      per_segment=per_segment, failed_segments=failed_segments,
+                      mcnemar=mc)
+
+
+def calibration(y: np.ndarray, proba: np.ndarray) -> float:
+    """Brier score (binary, ``sklearn.metrics.brier_score_loss``) or log loss (multiclass)."""
+    if proba.shape[1] == 2:
+        return float(metrics.brier_score_loss(y, proba[:, 1]))
+    return metric_value("log_loss", y, proba)
+
+
+def metric_interval(y: np.ndarray, probas: list[np.ndarray], name: str, n_resamples: int, confidence: float,
+                    rng: np.random.Generator) -> tuple[float, float]:
+    """Percentile interval of a metric over holdout resamples and, with several models, over models.
+
+    Each bootstrap resample of the holdout is scored with one of ``probas`` picked at random, so for
+    repeated random subsets the interval carries both the holdout's noise and the luck of the draw.
+    """
+    values = np.array([_safe_metric(name, y[i], probas[rng.integers(len(probas))][i])
+                       for i in _resamples(y, n_resamples, rng, stratify=True)])
+    lo, hi = _interval(values[np.isfinite(values)], confidence)
+    return float(lo), float(hi)
+
+
+@dataclass
 class Verdict:
-    """Outcome of the verify stage; ``to_dict`` gives the ``verdict`` section of run.json."""
+    """Outcome of the verify stage; ``to_dict`` gives the ``verdict`` section of run.json.
+
+    ``random`` is the mean metric of ``verify.random_repeats`` same-size uniform subsets and
+    ``random_ci`` its interval (see ``metric_interval``).
+    """
 
     status: str
     metric: str
     full: float
     kept: float
     random: float
+    random_ci: tuple[float, float]
     delta: float
     ci: tuple[float, float]
     tolerance: float
     mcnemar: dict[str, float]
-    per_class_recall: dict[str, dict[str, float]]
+    per_class_recall: dict[str, dict[str, Any]]
     failed_classes: list[str]
+    per_segment: dict[str, dict[str, Any]]
+    failed_segments: list[str]
+    metrics: dict[str, dict[str, float]]
+    calibration: dict[str, float]
     train_seconds: dict[str, float]
     speedup: float
     models: dict[str, FittedTarget]
@@ -170,13 +306,23 @@ class Verdict:
     def to_dict(self) -> dict[str, Any]:
         """Everything but the fitted models, JSON-ready."""
         d = {k: v for k, v in self.__dict__.items() if k != "models"}
-        d["ci"] = list(self.ci)
+        d["ci"], d["random_ci"] = list(self.ci), list(self.random_ci)
         return d
+
+
+def fit_timed(X: np.ndarray, y: np.ndarray, weight: np.ndarray | None, n_classes: int, categorical: list[int],
+              target: TargetConfig, seed: int) -> tuple[FittedTarget, float]:
+    """``fit_target`` and its wall time in seconds."""
+    t0 = time.perf_counter()
+    model = fit_target(X, y, weight, n_classes, categorical, target, seed)
+    return model, time.perf_counter() - t0
 
 
 def verify(X_train: np.ndarray, y_train: np.ndarray, keep: np.ndarray, weight: np.ndarray,
            X_hold: np.ndarray, y_hold: np.ndarray, classes: list, categorical: list[int],
-           target: TargetConfig, config: VerifyConfig, seed: int) -> Verdict:
+           target: TargetConfig, config: VerifyConfig, seed: int,
+           segments_hold: np.ndarray | None = None, segment_names: tuple[str, ...] = (),
+           full: tuple[FittedTarget, float] | None = None) -> Verdict:
     """Train the target on full, kept and same-size random training rows; judge Δ on the holdout.
 
     Parameters
@@ -190,6 +336,10 @@ def verify(X_train: np.ndarray, y_train: np.ndarray, keep: np.ndarray, weight: n
         The holdout, never pruned.
     classes : list
         Label values, for naming per-class results.
+    segments_hold : ndarray of int, shape (m, s), optional
+        Segment codes of the holdout rows, named by ``segment_names``.
+    full : (FittedTarget, float), optional
+        An already trained full-data model and its training seconds, to reuse.
 
     Returns
     -------
@@ -197,41 +347,35 @@ def verify(X_train: np.ndarray, y_train: np.ndarray, keep: np.ndarray, weight: n
     """
     rng = np.random.default_rng([seed, 0x7E5])
     k = len(classes)
+    if k == 0 and config.metric not in REGRESSION_METRICS:  # regression with the default metric
+        config = config.model_copy(update={"metric": "rmse"})
     kept_idx = np.flatnonzero(keep)
-    random_idx = np.sort(rng.choice(len(y_train), size=len(kept_idx), replace=False))
     w = weight[kept_idx]
-    runs = {"full": (np.arange(len(y_train)), None), "kept": (kept_idx, None if np.allclose(w, 1.0) else w),
-            "random": (random_idx, None)}
     models, seconds, proba = {}, {}, {}
-    for name, (idx, wt) in runs.items():
-        t0 = time.perf_counter()
-        models[name] = fit_target(X_train[idx], y_train[idx], wt, k, categorical, target, seed)
-        seconds[name] = time.perf_counter() - t0
-        proba[name] = models[name].predict_proba(X_hold)
+    models["full"], seconds["full"] = full or fit_timed(X_train, y_train, None, k, categorical, target, seed)
+    models["kept"], seconds["kept"] = fit_timed(X_train[kept_idx], y_train[kept_idx], None if np.allclose(w, 1.0) else w,
+                                                k, categorical, target, seed)
+    random_proba = []
+    for r in range(config.random_repeats):
+        idx = np.sort(rng.choice(len(y_train), size=len(kept_idx), replace=False))
+        model, sec = fit_timed(X_train[idx], y_train[idx], None, k, categorical, target, seed + r)
+        if r == 0:
+            models["random"], seconds["random"] = model, sec
+        random_proba.append(model.predict_proba(X_hold))
+    proba = {"full": models["full"].predict_proba(X_hold), "kept": models["kept"].predict_proba(X_hold)}
     m = config.metric
-    value = {name: metric_value(m, y_hold, p) for name, p in proba.items()}
-    delta = ORIENTATION[m] * (value["full"] - value["kept"])
-    lo, hi = paired_bootstrap(y_hold, proba["full"], proba["kept"], m, config.bootstrap, config.confidence, rng)
-
-    hit = {name: p.argmax(axis=1) == y_hold for name, p in proba.items()}
-    drop, c_lo, c_hi = recall_drop(y_hold, hit["full"], hit["kept"], k, config.bootstrap, config.confidence, rng)
-    recall = {}
-    for c in range(k):
-        rows = y_hold == c
-        recall[str(classes[c])] = {"full": float(hit["full"][rows].mean()), "kept": float(hit["kept"][rows].mean()),
-                                   "drop": float(drop[c]), "ci": [float(c_lo[c]), float(c_hi[c])]}
-    tol_c = config.class_tolerance
-    failed = [str(classes[c]) for c in range(k) if c_lo[c] > tol_c]
-    if lo > config.tolerance or failed:
-        status = "fail"
-    elif hi <= config.tolerance and np.all(c_hi <= tol_c):
-        status = "pass"
-    else:
-        status = "inconclusive"
-    mc = mcnemar_exact(hit["full"], hit["kept"])
+    random_value = float(np.mean([metric_value(m, y_hold, p) for p in random_proba]))
+    random_ci = metric_interval(y_hold, random_proba, m, config.bootstrap, config.confidence, rng)
+    cmp = compare(y_hold, proba["full"], proba["kept"], classes, config, rng, segments_hold, segment_names)
+    proba["random"] = random_proba[0]
+    report = {name: {which: metric_value(name, y_hold, p) for which, p in proba.items()}
+              for name in dict.fromkeys((m, *(("accuracy", "balanced_accuracy", "macro_f1") if k else REGRESSION_METRICS)))}
     return Verdict(
-        status=status, metric=m, full=value["full"], kept=value["kept"], random=value["random"],
-        delta=float(delta), ci=(lo, hi), tolerance=config.tolerance, mcnemar=mc,
-        per_class_recall=recall, failed_classes=failed,
+        status=cmp.status, metric=m, full=metric_value(m, y_hold, proba["full"]),
+        kept=metric_value(m, y_hold, proba["kept"]), random=random_value, random_ci=random_ci,
+        delta=cmp.delta, ci=cmp.ci, tolerance=config.tolerance, mcnemar=cmp.mcnemar,
+        per_class_recall=cmp.per_class_recall, failed_classes=cmp.failed_classes,
+        per_segment=cmp.per_segment, failed_segments=cmp.failed_segments, metrics=report,
+        calibration={which: calibration(y_hold, p) for which, p in proba.items()} if k else {},
         train_seconds=seconds, speedup=seconds["full"] / max(seconds["kept"], 1e-9), models=models,
     )
