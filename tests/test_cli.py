@@ -12,6 +12,7 @@ import pytest
 from typer.testing import CliRunner
 
 from leanset.cli import app
+from store_helpers import config as write_config
 from leanset.config import SCORE_NAMES
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -25,26 +26,7 @@ REASON_CODES = {"keep:stratum", "keep:floor", "keep:hard", "keep:easy", "keep:ra
 
 def _config(tmp_path, table_path, **extra):
     """A small, fast config for ``table_path`` written to tmp_path."""
-    sections = {
-        "input": {"path": str(table_path), "label": "label"},
-        "proxy": {"folds": 3, "rounds": 20, "checkpoint_every": 5},
-        "selection": {"fraction": 0.5, "class_floor": 5},
-        "target": {"params": {"num_boost_round": 30}},
-        "verify": {"bootstrap": 200, "tolerance": 0.05},
-        "store": str(tmp_path / "store"),
-        "seed": 3,
-    }
-    for dotted, value in extra.items():
-        node = sections
-        *parents, leaf = dotted.split("__")
-        for p in parents:
-            node = node.setdefault(p, {})
-        node[leaf] = value
-    path = tmp_path / "config.yaml"
-    import yaml
-
-    path.write_text(yaml.safe_dump(sections))
-    return path
+    return write_config(tmp_path, table_path, selection__fraction=0.5, verify__random_repeats=3, **extra)
 
 
 def _table(tmp_path, n=600, seed=0, name="t.parquet", **columns):

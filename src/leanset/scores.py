@@ -98,24 +98,28 @@ class Dynamics:
         p = softmax(z)
         py = p[idx, y]
         m = margin(z, y)
-        correct = m > 0  # z[y] above every other logit; for finite floats a - b > 0 exactly when a > b
-        prev = self.prev_correct[rows]
-        self.forgetting[rows] += (prev == 1) & ~correct
-        self.prev_correct[rows] = correct
-        self.ever_correct[rows] |= correct
-        self.margin_sum[rows] += m
-        self.correct_sum[rows] += correct
         self.aleatoric_sum[rows] += py * (1.0 - py)
-        n = self.count[rows] + 1
-        delta = py - self.p_mean[rows]
-        mean = self.p_mean[rows] + delta / n
-        self.p_m2[rows] += delta * (py - mean)
-        self.p_mean[rows] = mean
-        self.count[rows] = n
         if t == self.el2n_checkpoint:
             p[idx, y] -= 1.0
             self.el2n_sum[rows] += np.sqrt(np.einsum("ij,ij->i", p, p))
             self.el2n_count[rows] += 1
+        # correct: z[y] above every other logit; for finite floats a - b > 0 exactly when a > b
+        self.accumulate(rows, m > 0, m, py)
+
+    def accumulate(self, rows: np.ndarray, correct: np.ndarray, margin_t: np.ndarray, value: np.ndarray) -> None:
+        """Fold one checkpoint's correctness, margin and tracked value (p_t[y], or ŷ_t) into ``rows``."""
+        prev = self.prev_correct[rows]
+        self.forgetting[rows] += (prev == 1) & ~correct
+        self.prev_correct[rows] = correct
+        self.ever_correct[rows] |= correct
+        self.margin_sum[rows] += margin_t
+        self.correct_sum[rows] += correct
+        n = self.count[rows] + 1
+        delta = value - self.p_mean[rows]
+        mean = self.p_mean[rows] + delta / n
+        self.p_m2[rows] += delta * (value - mean)
+        self.p_mean[rows] = mean
+        self.count[rows] = n
 
     def result(self, rows: np.ndarray) -> dict[str, np.ndarray]:
         """The finished statistics of ``rows``."""
@@ -163,22 +167,10 @@ class ResidualDynamics:
         for s in range(0, len(rows), CHUNK):
             r, p, yy = rows[s:s + CHUNK], pred[s:s + CHUNK], y[s:s + CHUNK]
             res = np.abs(p - yy)
-            correct = res <= self.band
-            prev = d.prev_correct[r]
-            d.forgetting[r] += (prev == 1) & ~correct
-            d.prev_correct[r] = correct
-            d.ever_correct[r] |= correct
-            d.margin_sum[r] -= res
-            d.correct_sum[r] += correct
-            n = d.count[r] + 1
-            delta = p - d.p_mean[r]
-            mean = d.p_mean[r] + delta / n
-            d.p_m2[r] += delta * (p - mean)
-            d.p_mean[r] = mean
-            d.count[r] = n
             if t == d.el2n_checkpoint:
                 d.el2n_sum[r] += res
                 d.el2n_count[r] += 1
+            d.accumulate(r, res <= self.band, -res, p)
 
     def result(self, rows: np.ndarray) -> dict[str, np.ndarray]:
         """The finished statistics of ``rows``."""

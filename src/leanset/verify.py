@@ -276,27 +276,20 @@ def metric_interval(y: np.ndarray, probas: list[np.ndarray], name: str, n_resamp
 
 
 @dataclass
-class Verdict:
-    """Outcome of the verify stage; ``to_dict`` gives the ``verdict`` section of run.json.
+class Verdict(Comparison):
+    """Outcome of the verify stage: the comparison plus each model's figures; ``to_dict`` gives
+    the ``verdict`` section of run.json.
 
     ``random`` is the mean metric of ``verify.random_repeats`` same-size uniform subsets and
     ``random_ci`` its interval (see ``metric_interval``).
     """
 
-    status: str
     metric: str
     full: float
     kept: float
     random: float
     random_ci: tuple[float, float]
-    delta: float
-    ci: tuple[float, float]
     tolerance: float
-    mcnemar: dict[str, float]
-    per_class_recall: dict[str, dict[str, Any]]
-    failed_classes: list[str]
-    per_segment: dict[str, dict[str, Any]]
-    failed_segments: list[str]
     metrics: dict[str, dict[str, float]]
     calibration: dict[str, float]
     train_seconds: dict[str, float]
@@ -371,11 +364,9 @@ def verify(X_train: np.ndarray, y_train: np.ndarray, keep: np.ndarray, weight: n
     report = {name: {which: metric_value(name, y_hold, p) for which, p in proba.items()}
               for name in dict.fromkeys((m, *(("accuracy", "balanced_accuracy", "macro_f1") if k else REGRESSION_METRICS)))}
     return Verdict(
-        status=cmp.status, metric=m, full=metric_value(m, y_hold, proba["full"]),
+        **vars(cmp), metric=m, full=metric_value(m, y_hold, proba["full"]),
         kept=metric_value(m, y_hold, proba["kept"]), random=random_value, random_ci=random_ci,
-        delta=cmp.delta, ci=cmp.ci, tolerance=config.tolerance, mcnemar=cmp.mcnemar,
-        per_class_recall=cmp.per_class_recall, failed_classes=cmp.failed_classes,
-        per_segment=cmp.per_segment, failed_segments=cmp.failed_segments, metrics=report,
+        tolerance=config.tolerance, metrics=report,
         calibration={which: calibration(y_hold, p) for which, p in proba.items()} if k else {},
         train_seconds=seconds, speedup=seconds["full"] / max(seconds["kept"], 1e-9), models=models,
     )
