@@ -58,7 +58,7 @@ def select_task(frame: RowFrame, scores: Scores, config: Config) -> Selection:
     segments = None if frame.segments is None else frame.segments[train]
     # frame.groups: the classes, or label-quantile bins on a regression table
     return select_rows(scores.difficulty(config.selection.score), frame.groups[train], config.selection, config.seed,
-                       suspect=scores.table["suspect_label"].fillna(False).to_numpy(bool),
+                       suspect=scores.suspects(),
                        segments=segments, X=frame.X[train])
 
 

@@ -62,7 +62,7 @@ class FractionEvaluator:
         else:
             sel_cfg = cfg.selection.model_copy(update={"fraction": fraction, "strategy": strategy})
             sel = select_rows(self.scores.difficulty(cfg.selection.score), self.groups, sel_cfg, cfg.seed,
-                              suspect=self.scores.table["suspect_label"].fillna(False).to_numpy(bool),
+                              suspect=self.scores.suspects(),
                               segments=self.segments, X=self.X)
             idx = np.flatnonzero(sel.keep)
             w = sel.weight[idx]

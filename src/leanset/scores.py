@@ -267,6 +267,10 @@ class Scores:
         """Score ``name`` oriented so that higher means harder."""
         return DIFFICULTY_SIGN[name] * self.table[name].to_numpy(np.float64)
 
+    def suspects(self) -> np.ndarray:
+        """``suspect_label`` as a boolean array; rows without a verdict (null) count as not suspect."""
+        return self.table["suspect_label"].fillna(False).to_numpy(bool)
+
 
 def _refold(groups: np.ndarray, folds: int, rng: np.random.Generator) -> np.ndarray:
     """A fresh stratified fold assignment: within each group, a seeded shuffle dealt round-robin."""
