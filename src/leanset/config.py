@@ -98,6 +98,14 @@ class VerifyConfig(_Section):
     confidence: float = Field(0.95, gt=0.5, lt=1)
 
 
+class ExecutionConfig(_Section):
+    engine: Literal["local", "dask"] = "local"
+    address: str | None = None
+    workers: int = Field(2, ge=1, le=64)
+    batch_rows: int = Field(65_536, ge=100)
+    feature_memory_mb: float = Field(1024, ge=0)
+
+
 class Config(_Section):
     input: InputConfig
     holdout: HoldoutConfig = HoldoutConfig()
@@ -105,6 +113,7 @@ class Config(_Section):
     selection: SelectionConfig = SelectionConfig()
     target: TargetConfig = TargetConfig()
     verify: VerifyConfig = VerifyConfig()
+    execution: ExecutionConfig = ExecutionConfig()
     store: Path = Path("leanset-store")
     seed: int = Field(0, ge=0)
 
