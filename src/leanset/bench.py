@@ -1,43 +1,206 @@
-"""Benchmarks that print figures: what the score stage costs beyond plain proxy fits.
+"""Benchmarks that print figures: what the score stage costs, and how a run grows with the table.
 
-The table is invented (a seeded random linear rule with label noise), built in memory; the score
-stage runs on it exactly as in a run. Peak memory is the process's resident high-water mark
-(``VmHWM`` in ``/proc/self/status``), reset before each measured part where Linux allows it.
+The tables are invented: a seeded random linear rule with Gumbel label noise, drawn in fixed-size
+chunks, each from its own seeded generator, so the same seed gives the same rows however the table
+is cut into files, and a smaller table is the first rows of a larger one. ``bench score`` builds the
+table in memory; ``bench make-table`` writes it as parquet files chunk by chunk; ``bench scale``
+runs the load, score and select stages on such files, one fresh process per size. Peak memory is
+the process's resident high-water mark (``VmHWM`` in ``/proc/self/status``).
 """
 
 from __future__ import annotations
 
+import json
 import os
 import platform
+import shutil
+import subprocess
+import sys
+import tempfile
 import time
+import uuid
+from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 
 import lightgbm as lgb
 import numpy as np
 import pyarrow as pa
+import pyarrow.dataset as ds
+import pyarrow.parquet as pq
 
-from .config import Config
-from .errors import ConfigError
+from . import errors
+from .config import Config, ExecutionConfig
+from .errors import ConfigError, LeansetError
 from .proxy import gbdt_params
-from .scores import score
-from .table import RowFrame, _split
+from .scores import Scores, score
+from .select import Selection, select_rows
+from .table import RowFrame, TableSource, _split, load_table
+
+#: Rows drawn per generator chunk. Fixed: the data depend on it, never on the number of files.
+CHUNK_ROWS = 100_000
+#: Most rows per parquet file when the number of files is not given.
+FILE_ROWS = 1_000_000
+#: Written beside the parquet files of a generated table (the leading ``_`` keeps readers off it).
+META_NAME = "_leanset_table.json"
+#: Version of the generator; a table written by another version is not reused.
+GENERATOR = 1
 
 
-def make_table(rows: int, features: int, classes: int, seed: int = 0, holdout: float = 0.2, folds: int = 5) -> RowFrame:
-    """An invented classification table: float32 features, labels from a noisy random linear rule."""
-    rng = np.random.default_rng([seed, 0xBE7C])
-    X = rng.standard_normal((rows, features), dtype=np.float32)
-    W = rng.standard_normal((features, classes)).astype(np.float32)
-    logits = X @ W
-    logits += rng.gumbel(size=logits.shape).astype(np.float32) * 2.0  # label noise: not separable
-    y = logits.argmax(axis=1).astype(np.int32)
-    del logits
+def _rule(features: int, classes: int, seed: int) -> np.ndarray:
+    """The seeded linear rule (features × classes weights) that labels every chunk."""
+    return np.random.default_rng([seed, 0xBE7C]).standard_normal((features, classes)).astype(np.float32)
+
+
+def table_chunks(rows: int, features: int, classes: int, seed: int = 0) -> Iterator[tuple[int, np.ndarray, np.ndarray]]:
+    """The invented table, ``CHUNK_ROWS`` rows at a time.
+
+    Chunk ``i`` draws its features and its label noise from two generators seeded from ``seed``
+    and ``i``; both fill row by row, so a shorter last chunk is a prefix of the full one.
+
+    Yields
+    ------
+    start : int
+        Index of the chunk's first row.
+    X : ndarray of float32, shape (m, features)
+    y : ndarray of int32, shape (m,)
+        Class of each row: argmax of ``X @ W`` plus Gumbel noise (scale 2, so not separable).
+    """
+    W = _rule(features, classes, seed)
+    for index, start in enumerate(range(0, rows, CHUNK_ROWS)):
+        m = min(CHUNK_ROWS, rows - start)
+        X = np.random.default_rng([seed, 0xBE7C, index, 0]).standard_normal((m, features), dtype=np.float32)
+        logits = X @ W
+        logits += np.random.default_rng([seed, 0xBE7C, index, 1]).gumbel(size=logits.shape).astype(np.float32) * 2.0
+        yield start, X, logits.argmax(axis=1).astype(np.int32)
+
+
+def make_table(rows: int, features: int, classes: int, seed: int = 0, holdout: float = 0.2, folds: int = 5,
+               batch_rows: int = ExecutionConfig.model_fields["batch_rows"].default) -> RowFrame:
+    """The invented classification table of :func:`table_chunks`, in memory, split as ``load_table`` splits;
+    ``batch_rows`` is the rows per batch of :meth:`RowFrame.feature_batches`."""
+    X = np.empty((rows, features), dtype=np.float32)
+    y = np.empty(rows, dtype=np.int32)
+    for start, Xc, yc in table_chunks(rows, features, classes, seed):
+        X[start:start + len(yc)], y[start:start + len(yc)] = Xc, yc
     row_id = np.arange(rows, dtype=np.int64)
     hold, fold = _split(row_id, y, holdout, folds, seed)
     return RowFrame(row_id=row_id, y=y, classes=list(range(classes)), X=X,
                     feature_names=[f"x{j}" for j in range(features)], categorical=[], categories={},
-                    holdout=hold, fold=fold, fingerprint="bench", source=pa.table({"row_id": row_id}))
+                    holdout=hold, fold=fold, fingerprint="bench",
+                    source=TableSource(ds.dataset(pa.table({"row_id": row_id})), Path("bench"), None, batch_rows))
+
+
+@dataclass(frozen=True)
+class WrittenTable:
+    """What :func:`write_table` wrote."""
+
+    path: Path
+    rows: int
+    features: int
+    classes: int
+    files: int
+    bytes: int
+    seconds: float
+
+    def line(self) -> str:
+        """One line: rows, files, bytes, seconds."""
+        return (f"wrote {self.rows:,} rows x {self.features} features, {self.classes} classes to {self.path}: "
+                f"{self.files} parquet files, {self.bytes / 2**20:,.1f} MiB in {self.seconds:.1f} s")
+
+
+def _meta(rows: int, features: int, classes: int, seed: int) -> dict:
+    return {"generator": GENERATOR, "chunk_rows": CHUNK_ROWS, "rows": rows, "features": features, "classes": classes, "seed": seed}
+
+
+def write_table(out: Path, rows: int, features: int, classes: int, seed: int = 0, files: int | None = None) -> WrittenTable:
+    """Write the invented table of :func:`table_chunks` as ``out/part-00000.parquet``, … chunk by chunk.
+
+    Columns ``x0`` … ``x{features-1}`` (float32) and ``label`` (int32, 0 … classes-1). The files are
+    built in a ``<out>.tmp-*`` folder beside ``out``, then renamed to ``out``.
+
+    Parameters
+    ----------
+    out : Path
+        A folder that does not exist yet, or is empty.
+    rows, features, classes, seed : int
+        Shape of the table and seed of its generator.
+    files : int, optional
+        Number of files, rows spread evenly; default the fewest of at most ``FILE_ROWS`` rows, and at least 2.
+
+    Returns
+    -------
+    WrittenTable
+
+    Raises
+    ------
+    ConfigError
+        When ``out`` is not empty, or the shape or number of files is out of range.
+    """
+    out = Path(out)
+    files = files if files is not None else max(2, -(-rows // FILE_ROWS))
+    if features < 1 or classes < 2:
+        raise ConfigError(f"bench table: {features} features and {classes} classes; give at least 1 feature and 2 classes")
+    if not 1 <= files <= rows:
+        raise ConfigError(f"bench table: {files} files for {rows:,} rows; give between 1 and {rows:,} files so none is empty")
+    if out.exists() and (not out.is_dir() or any(out.iterdir())):
+        raise ConfigError(f"{out}: already exists and is not an empty folder; pass a new --out folder or remove this one")
+    t0 = time.perf_counter()
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out.parent / f"{out.name}.tmp-{uuid.uuid4().hex[:12]}"
+    tmp.mkdir()
+    schema = pa.schema([(f"x{j}", pa.float32()) for j in range(features)] + [("label", pa.int32())])
+    bounds = [rows * i // files for i in range(files + 1)]
+    writer, part = None, 0
+    try:
+        for start, X, y in table_chunks(rows, features, classes, seed):
+            a = 0
+            while a < len(y):
+                if writer is None:
+                    writer = pq.ParquetWriter(tmp / f"part-{part:05d}.parquet", schema)
+                b = min(len(y), bounds[part + 1] - start)
+                cols = np.ascontiguousarray(X[a:b].T)
+                writer.write_table(pa.Table.from_arrays([*cols, y[a:b]], schema=schema))
+                a = b
+                if start + b == bounds[part + 1]:
+                    writer.close()
+                    writer, part = None, part + 1
+        (tmp / META_NAME).write_text(json.dumps({**_meta(rows, features, classes, seed), "files": files}))
+        size = sum(f.stat().st_size for f in tmp.glob("part-*.parquet"))
+        try:
+            tmp.rename(out)
+        except OSError:
+            raise ConfigError(f"{out}: was filled while the table was written; pass a new --out folder or remove this one") from None
+    except BaseException:
+        if writer is not None:
+            writer.close()
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return WrittenTable(path=out, rows=rows, features=features, classes=classes, files=files, bytes=size,
+                        seconds=time.perf_counter() - t0)
+
+
+def ensure_table(out: Path, rows: int, features: int, classes: int, seed: int = 0) -> WrittenTable | None:
+    """Write the table to ``out`` unless ``out`` already holds it (same shape, seed and generator).
+
+    Returns
+    -------
+    WrittenTable or None
+        None when the table was already there.
+
+    Raises
+    ------
+    ConfigError
+        When ``out`` holds anything else.
+    """
+    out, want = Path(out), _meta(rows, features, classes, seed)
+    meta = out / META_NAME
+    if meta.is_file() and {k: json.loads(meta.read_text()).get(k) for k in want} == want:
+        return None
+    if out.exists() and (not out.is_dir() or any(out.iterdir())):
+        raise ConfigError(f"{out}: holds something other than the table of {rows:,} rows x {features} features, "
+                          f"{classes} classes, seed {seed}; remove it or pass another --dir")
+    return write_table(out, rows, features, classes, seed)
 
 
 def _rss() -> dict[str, int]:
@@ -55,6 +218,12 @@ def _reset_peak() -> bool:
         return True
     except OSError:
         return False
+
+
+def machine() -> str:
+    """The machine line every benchmark prints: cpus, threads, python and lightgbm versions."""
+    return (f"machine: {os.cpu_count()} cpus, OMP_NUM_THREADS={os.environ.get('OMP_NUM_THREADS', 'unset')}, "
+            f"python {platform.python_version()}, lightgbm {lgb.__version__}")
 
 
 @dataclass
@@ -85,7 +254,7 @@ class ScoreBench:
         mb = 1 / 2**20
         return [
             f"table: {self.rows:,} rows x {self.features} features, {self.classes} classes; float32 X {self.x_bytes * mb:,.0f} MiB",
-            f"machine: {os.cpu_count()} cpus, OMP_NUM_THREADS={os.environ.get('OMP_NUM_THREADS', 'unset')}, python {platform.python_version()}, lightgbm {lgb.__version__}",
+            machine(),
             f"plain proxy fits (K={self.folds}): {self.plain_seconds:.2f} s",
             f"score stage: {self.score_seconds:.2f} s (cross-fitting with dynamics {self.dynamics_seconds:.2f} s, threshold-sample passes {self.threshold_seconds:.2f} s)",
             f"dynamics_overhead_ratio={self.dynamics_seconds / self.plain_seconds:.3f}",
@@ -114,7 +283,7 @@ def bench_score(rows: int, features: int, classes: int, config: Config) -> Score
     pc = config.proxy
     if pc.family != "gbdt":
         raise ConfigError("proxy.family: bench score times the gbdt proxy only; the linear proxy has no plain fit without its per-epoch decision values")
-    frame = make_table(rows, features, classes, config.seed, config.holdout.fraction, pc.folds)
+    frame = make_table(rows, features, classes, config.seed, config.holdout.fraction, pc.folds, config.execution.batch_rows)
     train = frame.train
     baseline = _rss()["VmRSS"]
 
@@ -141,3 +310,141 @@ def bench_score(rows: int, features: int, classes: int, config: Config) -> Score
                       dynamics_seconds=seconds - threshold, threshold_seconds=threshold, plain_seconds=plain,
                       x_bytes=frame.X.nbytes, baseline_rss=baseline, score_peak_rss=score_peak,
                       plain_peak_rss=plain_peak, peak_reset=peak_reset)
+
+
+def select_frame(frame: RowFrame, scores: Scores, config: Config) -> Selection:
+    """The select stage on a loaded frame, with the same calls as ``flows.select_task`` (no Prefect)."""
+    train = frame.train
+    segments = None if frame.segments is None else frame.segments[train]
+    return select_rows(scores.difficulty(config.selection.score), frame.groups[train], config.selection, config.seed,
+                       suspect=scores.suspects(), segments=segments, X=frame.feature_hash[train])
+
+
+@dataclass(frozen=True)
+class SizeBench:
+    """Figures of one size of ``bench scale``: seconds of each stage and bytes of the child process."""
+
+    rows: int
+    features: int
+    load_seconds: float
+    score_seconds: float
+    select_seconds: float
+    start_rss: int
+    peak_rss: int
+    kept: int
+    made: bool
+
+    @property
+    def x_bytes(self) -> int:
+        """Bytes of the float32 feature matrix of all rows."""
+        return self.rows * self.features * 4
+
+    def line(self) -> str:
+        """One row of the report, in the columns of :data:`SCALE_HEADER`."""
+        total = self.load_seconds + self.score_seconds + self.select_seconds
+        return (f"{self.rows:>12,} {self.load_seconds:>8.2f} {self.score_seconds:>8.2f} {self.select_seconds:>9.2f} "
+                f"{total:>8.2f} {self.peak_rss / 2**20:>9,.0f} {self.peak_rss / self.x_bytes:>7.2f}x "
+                f"{self.start_rss / 2**20:>10,.0f} {self.kept:>11,}  {'made' if self.made else 'reused'}")
+
+
+SCALE_HEADER = (f"{'rows':>12} {'load s':>8} {'score s':>8} {'select s':>9} {'total s':>8} {'peak MiB':>9} {'peak/X':>8} "
+                f"{'start MiB':>10} {'rows kept':>11}  table")
+
+
+def _scale_child() -> None:
+    """Body of the per-size process: read a config (JSON) on stdin, run load, score and select,
+    print the figures as one JSON line on stdout; a ``LeansetError`` is printed the same way, exit 2."""
+    config = Config.model_validate_json(sys.stdin.read())
+    start = _rss()["VmRSS"]
+    try:
+        t0 = time.perf_counter()
+        frame = load_table(config)
+        t1 = time.perf_counter()
+        scores = score(frame, config)
+        t2 = time.perf_counter()
+        selection = select_frame(frame, scores, config)
+        t3 = time.perf_counter()
+    except LeansetError as exc:
+        print(json.dumps({"error": str(exc), "kind": type(exc).__name__}))
+        sys.exit(2)
+    print(json.dumps({"load_seconds": t1 - t0, "score_seconds": t2 - t1, "select_seconds": t3 - t2, "start_rss": start,
+                      "peak_rss": _rss()["VmHWM"], "kept": int(selection.keep.sum())}))
+
+
+def run_size(table: Path, rows: int, features: int, config: Config, made: bool) -> SizeBench:
+    """Run load, score and select on the table in ``table`` in a fresh Python process.
+
+    Parameters
+    ----------
+    table : Path
+        Folder of the table; it becomes ``input.path`` (label column ``label``).
+    rows, features : int
+        Its shape, for the report.
+    config : Config
+        Everything else of the run (proxy, selection, execution, seed).
+    made : bool
+        Whether the table was written for this run, for the report.
+
+    Returns
+    -------
+    SizeBench
+    """
+    cfg = config.model_copy(update={"input": config.input.model_copy(update={"path": Path(table), "label": "label"})})
+    child = subprocess.run([sys.executable, "-c", "from leanset.bench import _scale_child; _scale_child()"],
+                           input=cfg.model_dump_json(), capture_output=True, text=True)
+    lines = child.stdout.strip().splitlines()
+    result = json.loads(lines[-1]) if lines and lines[-1].startswith("{") else None
+    if result is not None and "error" in result:
+        raise getattr(errors, result["kind"], LeansetError)(result["error"])
+    if child.returncode != 0 or result is None:
+        last = (child.stderr.strip().splitlines() or ["no message"])[-1]
+        raise LeansetError(f"bench scale: the process for {rows:,} rows ended with code {child.returncode} ({last}); "
+                           f"if it ran out of memory, give smaller --sizes or a smaller --feature-memory-mb")
+    return SizeBench(rows=rows, features=features, made=made, **result)
+
+
+def time_exponent(results: list[SizeBench]) -> float:
+    """Least-squares slope of log(score + select seconds) on log(rows): 1 is linear in the rows."""
+    rows = np.log([r.rows for r in results])
+    seconds = np.log([r.score_seconds + r.select_seconds for r in results])
+    return float(np.polyfit(rows, seconds, 1)[0])
+
+
+def bench_scale(sizes: list[int], features: int, classes: int, config: Config, folder: Path | None = None) -> Iterator[str]:
+    """Time load, score and select on invented parquet tables of growing size; yield the report's lines.
+
+    Each size's table is written under ``folder`` (reused when already there with the same shape and
+    seed; a temporary folder, removed at the end, when ``folder`` is None), then run in a fresh
+    process, so each size's peak RSS is its own. The last line is ``time_exponent=…``.
+
+    Parameters
+    ----------
+    sizes : list of int
+        Table rows, at least two different counts.
+    features, classes : int
+        Shape of every table.
+    config : Config
+        Proxy, selection and execution options and the seed (of the tables too); ``input`` is replaced.
+
+    Yields
+    ------
+    str
+    """
+    sizes = sorted(set(sizes))
+    if len(sizes) < 2 or sizes[0] < 100:
+        raise ConfigError(f"--sizes {','.join(map(str, sizes))}: give at least two different sizes of 100 rows or more, e.g. 250000,500000,1000000")
+    with tempfile.TemporaryDirectory(prefix="leanset-scale-") as scratch:
+        root = Path(folder) if folder is not None else Path(scratch)
+        ex, pc = config.execution, config.proxy
+        yield machine()
+        yield (f"tables: {features} features, {classes} classes, seed {config.seed}, under {root}; proxy {pc.family}, "
+               f"{pc.folds} folds, {pc.rounds} rounds, threshold samples {'on' if pc.threshold_samples else 'off'}; "
+               f"execution batch_rows {ex.batch_rows:,}, feature_memory_mb {ex.feature_memory_mb:g}")
+        yield SCALE_HEADER
+        results = []
+        for rows in sizes:
+            table = root / f"rows-{rows}-f{features}-c{classes}-seed{config.seed}"
+            made = ensure_table(table, rows, features, classes, config.seed) is not None
+            results.append(run_size(table, rows, features, config, made))
+            yield results[-1].line()
+        yield f"time_exponent={time_exponent(results):.3f}"

@@ -331,6 +331,63 @@ def bench_score_command(
         typer.echo(line)
 
 
+@bench_app.command("make-table")
+def bench_make_table_command(
+    rows: int = typer.Option(..., min=2, help="Rows of the invented table."),
+    features: int = typer.Option(..., min=1, help="Float32 feature columns x0, x1, …"),
+    classes: int = typer.Option(..., min=2, help="Label classes (int32 column label)."),
+    out: Path = typer.Option(..., help="Folder to create (must not exist, or be empty)."),
+    files: Optional[int] = typer.Option(None, min=1, help="Parquet files; default at most 1M rows each, at least 2."),
+    seed: int = typer.Option(0, help="Seed of the generator."),
+) -> None:
+    """Write an invented classification table as parquet files, chunk by chunk; same seed, same rows."""
+    from .bench import write_table
+
+    try:
+        written = write_table(out, rows, features, classes, seed, files)
+    except LeansetError as exc:
+        _fail(exc)
+    typer.echo(written.line())
+
+
+@bench_app.command("scale")
+def bench_scale_command(
+    sizes: str = typer.Option("250000,500000,1000000", help="Table rows, comma-separated (at least two sizes)."),
+    features: int = typer.Option(20, min=1, help="Float32 feature columns."),
+    classes: int = typer.Option(3, min=2, help="Label classes."),
+    dir: Optional[Path] = typer.Option(None, "--dir", help="Folder for the tables, kept and reused; default a temporary folder."),
+    folds: int = typer.Option(5, help="proxy.folds."),
+    rounds: int = typer.Option(60, help="proxy.rounds."),
+    checkpoint_every: int = typer.Option(5, help="proxy.checkpoint_every."),
+    threshold_samples: bool = typer.Option(True, help="proxy.threshold_samples: include the two AUM threshold-sample passes."),
+    batch_rows: int = typer.Option(65_536, help="execution.batch_rows."),
+    feature_memory_mb: float = typer.Option(1024, help="execution.feature_memory_mb."),
+    seed: int = typer.Option(0, help="seed (of the tables and the run)."),
+) -> None:
+    """Time load, score and select on parquet tables of growing size, one fresh process each; the last line is time_exponent=…"""
+    from pydantic import ValidationError
+
+    from .bench import bench_scale
+    from .config import Config
+    from .errors import ConfigError
+
+    try:
+        rows = [int(part) for part in sizes.split(",") if part.strip()]
+    except ValueError:
+        _fail(ConfigError(f"--sizes {sizes}: not whole numbers; give row counts separated by commas, e.g. 250000,500000,1000000"))
+    try:
+        cfg = Config.model_validate({"input": {"path": "bench", "label": "label"}, "seed": seed, "proxy": {
+            "folds": folds, "rounds": rounds, "checkpoint_every": checkpoint_every, "threshold_samples": threshold_samples},
+            "execution": {"batch_rows": batch_rows, "feature_memory_mb": feature_memory_mb}})
+    except ValidationError as err:
+        _fail(ConfigError(f"bench scale: {err.errors()[0]['loc'][-1]}: {err.errors()[0]['msg']}"))
+    try:
+        for line in bench_scale(rows, features, classes, cfg, dir):
+            typer.echo(line)
+    except LeansetError as exc:
+        _fail(exc)
+
+
 def main() -> None:
     """Console-script entry point."""
     app()

@@ -37,8 +37,8 @@ class FractionEvaluator:
     def __init__(self, frame: RowFrame, scores: Scores, config: Config):
         self.frame, self.scores, self.config = frame, scores, config
         train, hold = frame.train, frame.holdout
-        self.X, self.y, self.groups = frame.X[train], frame.y[train], frame.groups[train]
-        self.X_hold, self.y_hold = frame.X[hold], frame.y[hold]
+        self.X, self.y, self.groups = frame.features(train), frame.y[train], frame.groups[train]
+        self.X_hold, self.y_hold = frame.features(np.flatnonzero(hold)), frame.y[hold]
         self.segments = None if frame.segments is None else frame.segments[train]
         self.segments_hold = None if frame.segments is None else frame.segments[hold]
         self.full_model_, self.full_seconds_ = fit_timed(self.X, self.y, None, len(frame.classes), frame.categorical,
@@ -63,7 +63,7 @@ class FractionEvaluator:
             sel_cfg = cfg.selection.model_copy(update={"fraction": fraction, "strategy": strategy})
             sel = select_rows(self.scores.difficulty(cfg.selection.score), self.groups, sel_cfg, cfg.seed,
                               suspect=self.scores.suspects(),
-                              segments=self.segments, X=self.X)
+                              segments=self.segments, X=self.frame.feature_hash[self.frame.train])
             idx = np.flatnonzero(sel.keep)
             w = sel.weight[idx]
             fits = [self._fit(idx, None if np.allclose(w, 1.0) else w, cfg.seed)]

@@ -93,13 +93,68 @@ def gbdt_params(n_classes: int, config: ProxyConfig, seed: int) -> dict[str, Any
     return params
 
 
+class _BatchSequence(lgb.Sequence):
+    """LightGBM's ``Sequence`` over a stream of feature batches: rows served from a cursor that
+    moves forward batch by batch and restarts the stream when asked for an earlier row.
+
+    LightGBM reads its bin-construction sample in ascending row order, then every row in
+    consecutive slices, so the stream is read about twice and never held whole.
+    """
+
+    def __init__(self, batches: Callable[[], Any], n: int, batch_size: int):
+        self._batches, self._n, self.batch_size = batches, n, batch_size
+        self._it, self._start, self._block = None, 0, None
+
+    def __len__(self) -> int:
+        return self._n
+
+    def __getitem__(self, idx):
+        if isinstance(idx, slice):
+            start, stop, _ = idx.indices(self._n)
+            return self._rows(start, stop)
+        return self._rows(int(idx), int(idx) + 1)[0].astype(np.float64)  # LightGBM's bin sample must be float64
+
+    def _rows(self, start: int, stop: int) -> np.ndarray:
+        parts, pos = [], start
+        while pos < stop:
+            if self._block is None or pos < self._start:
+                self._it = iter(self._batches())
+                self._start, self._block = next(self._it)
+            while pos >= self._start + len(self._block):
+                self._start, self._block = next(self._it)
+            a, b = pos - self._start, min(stop - self._start, len(self._block))
+            parts.append(self._block[a:b])
+            pos = self._start + b
+        return parts[0] if len(parts) == 1 else np.concatenate(parts)
+
+
+def binned_dataset(batches: Callable[[], Any], n: int, label: np.ndarray, categorical: list[int],
+                   config: ProxyConfig, seed: int, batch_size: int) -> lgb.Dataset:
+    """One LightGBM Dataset of all ``n`` rows, built from feature batches without holding them whole.
+
+    ``batches()`` yields ``(start, X_batch)`` in row order. The folds and threshold-sample passes
+    train on subsets of it (``Dataset.subset``), so the rows are binned once, with one set of bin
+    edges. Bin edges use feature values only, never labels.
+    """
+    params = {**gbdt_params(2, config, seed)}
+    data = lgb.Dataset(_BatchSequence(batches, n, batch_size), label=label, categorical_feature=categorical or "auto",
+                       params={k: v for k, v in params.items() if k not in ("objective", "num_class")}, free_raw_data=True)
+    return data.construct()
+
+
 def fit_gbdt(X, y, n_classes, categorical, config: ProxyConfig, seed: int, on_checkpoint: Checkpoint) -> FittedProxy:
     """Fit LightGBM for ``config.rounds`` rounds, reporting logits every ``checkpoint_every`` rounds.
 
-    With ``n_classes`` 0 (regression) it reports the (n,) predicted values instead of logits.
+    ``X`` is a feature matrix, or a not yet constructed subset of :func:`binned_dataset`; either
+    way the fit's labels are ``y``. With ``n_classes`` 0 (regression) it reports the (n,)
+    predicted values instead of logits.
     """
     params = gbdt_params(n_classes, config, seed)
-    data = lgb.Dataset(X, label=y, categorical_feature=categorical or "auto", free_raw_data=True)
+    if isinstance(X, lgb.Dataset):
+        data = X.construct()
+        data.set_label(y)
+    else:
+        data = lgb.Dataset(X, label=y, categorical_feature=categorical or "auto", free_raw_data=True)
     t = 0
 
     def record(env: lgb.callback.CallbackEnv) -> None:

@@ -35,7 +35,8 @@ import pandas as pd
 from scipy import stats
 
 from .config import Config, ProxyConfig, SCORE_NAMES
-from .proxy import FittedProxy, fit_proxy, n_checkpoints, softmax
+from .errors import ConfigError
+from .proxy import FittedProxy, binned_dataset, fit_proxy, n_checkpoints, softmax
 from .table import RowFrame
 from .verify import fit_target
 
@@ -197,7 +198,7 @@ def _margin_sums(n: int) -> tuple[np.ndarray, Callable]:
     return total, add
 
 
-def threshold_samples(X: np.ndarray, y: np.ndarray, n_classes: int, categorical: list[int], config: ProxyConfig,
+def threshold_samples(X, y: np.ndarray, n_classes: int, categorical: list[int], config: ProxyConfig,
                       seed: int) -> tuple[np.ndarray, dict]:
     """Suspected label errors by the AUM threshold-sample procedure (Pleiss et al., NeurIPS 2020).
 
@@ -282,35 +283,41 @@ def _refold(groups: np.ndarray, folds: int, rng: np.random.Generator) -> np.ndar
     return fold
 
 
-def _cross_fit(X, rows, y, fold, n_classes, categorical, pc: ProxyConfig, seeds: list[int]) -> tuple[dict, list[FittedProxy]]:
-    """One cross-fitting pass: in-fold dynamics and out-of-fold scores of every row.
+def _cross_fit(frame: RowFrame, binned, rows, y, fold, n_classes, pc: ProxyConfig, seeds: list[int]) -> tuple[dict, list[FittedProxy]]:
+    """One cross-fitting pass: in-fold dynamics and out-of-fold scores of the training rows ``rows``.
 
-    ``X`` is the whole feature matrix and ``rows`` the indices of the scored rows in it, so each
-    fold copies only the rows it fits on, never all training rows at once.
+    The gbdt proxy trains on subsets of ``binned`` (all rows, binned once); the linear proxy on
+    copies of its fold's rows of ``frame.X``. Out-of-fold predictions take one pass over the
+    feature batches, each row predicted by the fold model that never saw it.
     """
     n, T = len(y), n_checkpoints(pc)
     el2n_at = max(1, int(round(pc.el2n_at * T)))
     dyn = Dynamics(n, el2n_at) if n_classes else ResidualDynamics(n, el2n_at, residual_band(y, pc))
-    oof = np.empty((n, n_classes)) if n_classes else np.empty(n)
     proxies = []
     for k in range(pc.folds):
         fit_rows = np.flatnonzero(fold != k)
-        out_rows = np.flatnonzero(fold == k)
         dyn.start_model(fit_rows)
-        model = fit_proxy(X[rows[fit_rows]], y[fit_rows], n_classes, categorical, pc, seeds[k],
-                          lambda t, z: dyn.update(t, fit_rows, z, y[fit_rows]))
-        X_out = X[rows[out_rows]]
-        oof[out_rows] = model.predict_proba(X_out) if n_classes else model.predict(X_out)
-        del X_out
-        proxies.append(model)
+        data = binned.subset(rows[fit_rows]) if binned is not None else frame.X[rows[fit_rows]]
+        proxies.append(fit_proxy(data, y[fit_rows], n_classes, frame.categorical, pc, seeds[k],
+                                 lambda t, z: dyn.update(t, fit_rows, z, y[fit_rows])))
+        del data
+    oof = np.empty((n, n_classes)) if n_classes else np.empty(n)
+    where = np.full(len(frame.y), -1, np.int64)
+    where[rows] = np.arange(n)
+    for start, X in frame.feature_batches():
+        at = where[start:start + len(X)]
+        for k, model in enumerate(proxies):
+            pick = np.flatnonzero(at >= 0)
+            pick = pick[fold[at[pick]] == k]
+            if len(pick):
+                oof[at[pick]] = model.predict_proba(X[pick]) if n_classes else model.predict(X[pick])
+    out = dyn.result(np.arange(n))
     if not n_classes:
-        out = dyn.result(np.arange(n))
         out["oof_loss"] = (oof - y) ** 2  # per-row squared error: averages to sklearn.metrics.mean_squared_error
         out["oof_margin"] = -np.abs(oof - y)
         return out, proxies
     # clip as sklearn.metrics.log_loss does (float64 eps), so oof_loss averages to its value
     p_true = np.clip(oof[np.arange(n), y], np.finfo(np.float64).eps, 1.0)
-    out = dyn.result(np.arange(n))
     out["oof_loss"] = -np.log(p_true)
     out["oof_margin"] = margin(oof, y)
     return out, proxies
@@ -341,6 +348,14 @@ def score(frame: RowFrame, config: Config) -> Scores:
     train = frame.train
     y = frame.y[train]
     n_classes = len(frame.classes)
+    if pc.family == "linear" and frame.X is None:
+        mb = len(frame.y) * len(frame.feature_names) * 4 / 2**20
+        raise ConfigError(f"proxy.family: linear needs the {mb:,.0f} MiB feature matrix in memory; "
+                          f"raise execution.feature_memory_mb above {mb:,.0f} or use proxy.family gbdt")
+    binned = None
+    if pc.family == "gbdt":
+        binned = binned_dataset(frame.feature_batches, len(frame.y), frame.y, frame.categorical, pc, config.seed,
+                                config.execution.batch_rows)
     runs, proxies = [], []
     for r in range(pc.repeats):
         if r == 0:
@@ -348,7 +363,7 @@ def score(frame: RowFrame, config: Config) -> Scores:
         else:
             rng = np.random.default_rng([config.seed, 0x2E9, r])
             fold, seeds = _refold(frame.groups[train], pc.folds, rng), [int(v) for v in rng.integers(2**31, size=pc.folds)]
-        out, models = _cross_fit(frame.X, train, y, fold, n_classes, frame.categorical, pc, seeds)
+        out, models = _cross_fit(frame, binned, train, y, fold, n_classes, pc, seeds)
         runs.append(out)
         proxies = proxies or models
     table = pd.DataFrame({name: np.mean([o[name] for o in runs], axis=0) for name in SCORE_NAMES})
@@ -358,7 +373,8 @@ def score(frame: RowFrame, config: Config) -> Scores:
     suspect = pd.array(np.full(len(y), pd.NA), dtype="boolean")
     if pc.threshold_samples and n_classes:
         t0 = time.perf_counter()
-        flags, info["label_errors"] = threshold_samples(frame.X[train], y, n_classes, frame.categorical, pc, config.seed)
+        data = binned.subset(train) if binned is not None else frame.X[train]
+        flags, info["label_errors"] = threshold_samples(data, y, n_classes, frame.categorical, pc, config.seed)
         info["timings"] = {"threshold_samples": round(time.perf_counter() - t0, 3)}
         suspect = pd.array(flags, dtype="boolean")
     table["suspect_label"] = suspect
@@ -386,7 +402,7 @@ def agreement(frame: RowFrame, scores: Scores, config: Config) -> dict | None:
     rng = np.random.default_rng([config.seed, 0xA9E])
     sample = np.sort(rng.choice(len(train), size=m, replace=False))
     rows = train[sample]
-    X, y = frame.X[rows], frame.y[rows]
+    X, y = frame.features(rows), frame.y[rows]
     fold = _refold(frame.groups[rows], pc.folds, rng)
     n_classes = len(frame.classes)
     loss = np.empty(m)

@@ -159,7 +159,8 @@ def _priority(d: np.ndarray, quota: int, config: SelectionConfig, rng: np.random
 def find_duplicates(X: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Exact duplicates (same features and label) and conflicts (same features, other labels).
 
-    Rows are compared by 64-bit hashes of their feature values (NaN equal to NaN).
+    Rows are compared by 64-bit hashes of their feature values (NaN equal to NaN); ``X`` is the
+    (n, f) feature matrix, or those hashes already computed, shape (n,) (``RowFrame.feature_hash``).
 
     Returns
     -------
@@ -170,7 +171,7 @@ def find_duplicates(X: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarra
     conflict : ndarray of bool, shape (n,)
         True when another row has the same features and a different label.
     """
-    features = pd.util.hash_pandas_object(pd.DataFrame(X), index=False).to_numpy()
+    features = X if X.ndim == 1 else pd.util.hash_pandas_object(pd.DataFrame(X), index=False).to_numpy()
     pairs = pd.DataFrame({"x": features, "y": np.asarray(y)})
     is_copy = pairs.duplicated(keep="first").to_numpy()
     dup_count = pairs.groupby(["x", "y"], sort=False)["y"].transform("size").to_numpy(np.int64)
@@ -205,8 +206,8 @@ def select(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, seed:
     segments : ndarray of int, shape (n, s), optional
         Segment codes: within each class the quota is shared among segments in proportion to
         their size, and each segment value keeps at least ``min(n_v, segment_floor)`` rows.
-    X : ndarray, shape (n, f), optional
-        Features, to collapse exact duplicates when ``config.dedupe`` is on.
+    X : ndarray, shape (n, f) or (n,), optional
+        Features, or their per-row hashes, to collapse exact duplicates when ``config.dedupe`` is on.
 
     Returns
     -------

@@ -293,12 +293,12 @@ def _write_locked(frame, scores, selection, verdict, config, timings, parent, ex
     try:
         manifest = manifest_table(frame, scores, selection)
         counts = check_conservation(manifest, len(frame.row_id))
-        pq.write_table(manifest, tmp / "manifest.parquet")
+        pq.write_table(manifest, tmp / "manifest.parquet", row_group_size=config.execution.batch_rows)
         kept_rows = frame.train[selection.keep]
         kept = frame.source.take(pa.array(kept_rows)).append_column(
             "weight", pa.array(selection.weight[selection.keep], pa.float64())).append_column(
             "dup_count", pa.array(selection.dup_count[selection.keep], pa.int64()))
-        pq.write_table(kept, tmp / "kept.parquet")
+        pq.write_table(kept, tmp / "kept.parquet", row_group_size=config.execution.batch_rows)
         models = tmp / "models"
         models.mkdir()
         for k, proxy in enumerate(scores.proxies):

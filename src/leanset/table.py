@@ -16,6 +16,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 import pyarrow.dataset as ds
+import pyarrow.parquet as pq
 
 from .config import REGRESSION_METRICS, Config
 from .errors import ConfigError, InputError
@@ -35,8 +36,9 @@ class RowFrame:
         Label codes, indices into ``classes``; float64 label values on a regression table.
     classes : list
         The label values, sorted; empty on a regression table.
-    X : ndarray of float32, shape (n, n_features)
-        Numeric features as given, categorical features as integer codes (NaN for missing).
+    X : ndarray of float32, shape (n, n_features), or None
+        Numeric features as given, categorical features as integer codes (NaN for missing); None
+        when the matrix is larger than ``execution.feature_memory_mb`` and is read in batches.
     feature_names : list of str
     categorical : list of int
         Column indices of ``X`` that hold categorical codes.
@@ -53,21 +55,24 @@ class RowFrame:
         ``classification`` or ``regression``.
     bins : ndarray of int32, shape (n,), optional
         Label-quantile bin of each row on a regression table, standing in for classes.
-    source : pyarrow.Table
-        The original columns (plus ``row_id`` when it was derived), for writing kept rows.
+    source : TableSource
+        The original columns (plus ``row_id`` when it was derived), read on demand.
+    feature_hash : ndarray of uint64, shape (n,)
+        A 64-bit hash of each row's feature values (NaN equal to NaN), to find exact duplicates.
     """
 
     row_id: np.ndarray
     y: np.ndarray
     classes: list
-    X: np.ndarray
+    X: np.ndarray | None
     feature_names: list[str]
     categorical: list[int]
     categories: dict[str, list]
     holdout: np.ndarray
     fold: np.ndarray
     fingerprint: str
-    source: pa.Table
+    source: TableSource
+    feature_hash: np.ndarray | None = None
     segments: np.ndarray | None = None
     segment_names: tuple[str, ...] = ()
     task: str = "classification"
@@ -82,6 +87,28 @@ class RowFrame:
     def train(self) -> np.ndarray:
         """Indices of the training rows (those that may be pruned)."""
         return np.flatnonzero(~self.holdout)
+
+    def encode(self, batch: pa.Table | pa.RecordBatch) -> np.ndarray:
+        """The float32 feature matrix of a batch of original columns, with this run's category codes."""
+        k = len(self.feature_names) - len(self.categorical)
+        names = self.feature_names
+        return _encode(batch.select(names).to_pandas(), names[:k], names[k:], self.categories)
+
+    def feature_batches(self):
+        """Yield ``(start, X_batch)`` over all rows in table order: slices of ``X``, or batches read from disk."""
+        if self.X is not None:
+            step = self.source.batch_rows
+            for start in range(0, len(self.X), step):
+                yield start, self.X[start:start + step]
+            return
+        start = 0
+        for batch in self.source.batches(self.feature_names):
+            yield start, self.encode(batch)
+            start += batch.num_rows
+
+    def features(self, rows: np.ndarray) -> np.ndarray:
+        """The float32 features of ``rows`` (positions in table order)."""
+        return self.X[rows] if self.X is not None else self.encode(self.source.take(rows))
 
 
 def _dataset(path: Path) -> ds.Dataset:
@@ -265,8 +292,80 @@ def _segment_codes(table: pa.Table, names: list[str], path: Path) -> np.ndarray 
     return np.column_stack(codes).astype(np.int32)
 
 
+def _encode(df: pd.DataFrame, numeric: list[str], categorical: list[str], categories: dict[str, list]) -> np.ndarray:
+    """Float32 features of a frame of original columns: numbers as given, categories as codes (NaN for missing or unseen)."""
+    X = np.empty((len(df), len(numeric) + len(categorical)), dtype=np.float32)
+    for j, name in enumerate(numeric):
+        X[:, j] = pd.to_numeric(df[name], errors="coerce").astype("float64").to_numpy(na_value=np.nan)
+    for j, name in enumerate(categorical, start=len(numeric)):
+        codes = pd.Categorical(df[name].astype("string"), categories=categories[name]).codes.astype(np.float32)
+        codes[codes < 0] = np.nan
+        X[:, j] = codes
+    return X
+
+
+class TableSource:
+    """The input table's original columns, read from disk on demand, plus ``row_id`` when it was derived.
+
+    Parameters
+    ----------
+    dataset : pyarrow.dataset.Dataset
+    path : Path
+    row_id : pyarrow.Array or None
+        Derived row ids, appended as a ``row_id`` column; None when the table has its own id column.
+    batch_rows : int
+        Rows per record batch when reading in batches.
+    """
+
+    def __init__(self, dataset: ds.Dataset, path: Path, row_id: pa.Array | None, batch_rows: int):
+        self.dataset, self.path, self.row_id, self.batch_rows = dataset, path, row_id, batch_rows
+
+    @property
+    def column_names(self) -> list[str]:
+        """The original column names, then ``row_id`` when derived."""
+        return self.dataset.schema.names + (["row_id"] if self.row_id is not None else [])
+
+    def column(self, name: str) -> pa.ChunkedArray:
+        """One column, read whole."""
+        if name == "row_id" and self.row_id is not None:
+            return pa.chunked_array([self.row_id])
+        return _read(self.dataset, self.path, [name]).column(name)
+
+    def take(self, indices) -> pa.Table:
+        """The rows at ``indices`` (positions in table order), every column."""
+        indices = pa.array(np.asarray(indices, dtype=np.int64))
+        try:
+            table = self.dataset.take(indices)
+        except (pa.ArrowInvalid, OSError) as exc:
+            raise InputError(f"{self.path}: cannot be read ({str(exc).splitlines()[0]}); check that the file is complete and not corrupt") from None
+        if self.row_id is not None:
+            table = table.append_column("row_id", self.row_id.take(indices))
+        return table
+
+    def batches(self, columns: list[str] | None = None):
+        """Record batches of ``columns`` (all original columns when None), in table order.
+
+        Parquet files are read one row group at a time (the scanner's read-ahead holds several),
+        so a pass holds about one row group, decoded.
+        """
+        try:
+            if not isinstance(self.dataset, ds.FileSystemDataset):
+                yield from self.dataset.to_batches(columns=columns, batch_size=self.batch_rows)
+                return
+            for file in self.dataset.files:
+                reader = pq.ParquetFile(file, filesystem=self.dataset.filesystem)
+                for group in range(reader.num_row_groups):
+                    yield from reader.read_row_group(group, columns=columns, use_threads=False).to_batches(self.batch_rows)
+        except (pa.ArrowInvalid, OSError) as exc:
+            raise InputError(f"{self.path}: cannot be read ({str(exc).splitlines()[0]}); check that the file is complete and not corrupt") from None
+
+
 def load_table(config: Config) -> RowFrame:
-    """Read and check the configured table and turn it into a :class:`RowFrame`.
+    """Read and check the configured table in record batches and turn it into a :class:`RowFrame`.
+
+    Row ids, the fingerprint, the holdout and the folds do not depend on ``execution.batch_rows``.
+    The float32 feature matrix is held in memory when it fits in ``execution.feature_memory_mb``;
+    otherwise ``X`` is None and later stages read features in batches (:meth:`RowFrame.feature_batches`).
 
     Raises
     ------
@@ -274,25 +373,52 @@ def load_table(config: Config) -> RowFrame:
         When the table does not fit the config (see :func:`check_input`).
     """
     path = config.input.path
+    inp, ex = config.input, config.execution
     dataset = _dataset(path)
     numeric, categorical = _feature_columns(dataset.schema, config, path)
-    table = _read(dataset, path)
-    _check_label_and_id(table, config, path)
-    inp = config.input
+    head_cols = [c for c in (inp.label, inp.id, *RESERVED, *inp.segments) if c is not None and c in dataset.schema.names]
+    head = _read(dataset, path, list(dict.fromkeys(head_cols)))
+    _check_label_and_id(head, config, path)
 
     used = [c for c in (*numeric, *categorical, inp.label, inp.id) if c is not None]
-    df = table.select(used).to_pandas()
-    content = _row_hashes(df)
-    fingerprint = hashlib.sha256(str(table.select(used).schema).encode() + content.tobytes()).hexdigest()[:32]
+    n, n_features = head.num_rows, len(numeric) + len(categorical)
+    in_memory = n * n_features * 4 <= ex.feature_memory_mb * 2**20
+    source = TableSource(dataset, path, None, ex.batch_rows)
+    hashes, uniques, blocks, cat_cols = [], {name: set() for name in categorical}, [], {name: [] for name in categorical}
+    feature_hashes = []
+    for batch in source.batches(used):
+        df = batch.to_pandas()
+        hashes.append(_row_hashes(df))
+        block = _encode(df, numeric, [], {})
+        cats = pd.DataFrame({name: df[name].astype("string") for name in categorical}, index=df.index)
+        # same values, same hash: float32 numbers and category strings (one code per string)
+        feature_hashes.append(_row_hashes(pd.concat([pd.DataFrame(block, index=df.index), cats], axis=1)))
+        for name in categorical:
+            uniques[name].update(cats[name].dropna().unique().tolist())
+            if in_memory:
+                cat_cols[name].append(cats[name])
+        if in_memory:
+            blocks.append(block)
+    content = np.concatenate(hashes) if hashes else np.empty(0, np.uint64)
+    schema = pa.schema([dataset.schema.field(c) for c in used])
+    fingerprint = hashlib.sha256(str(schema).encode() + content.tobytes()).hexdigest()[:32]
+    categories = {name: sorted(uniques[name]) for name in categorical}
+    X = None
+    if in_memory:
+        X = np.empty((n, n_features), dtype=np.float32)
+        X[:, :len(numeric)] = np.concatenate(blocks) if blocks else np.empty((0, len(numeric)), np.float32)
+        del blocks
+        if categorical:
+            cats = pd.DataFrame({name: pd.concat(cat_cols[name], ignore_index=True) for name in categorical})
+            X[:, len(numeric):] = _encode(cats, [], categorical, categories)
     if inp.id is None:
         row_id = _derive_ids(content)
-        source = table.append_column("row_id", pa.array(row_id, pa.string()))
+        source.row_id = pa.array(row_id, pa.string())
     else:
-        row_id = df[inp.id].astype(str).to_numpy(dtype=object)
-        source = table
+        row_id = head.column(inp.id).to_pandas().astype(str).to_numpy(dtype=object)
 
-    label = df[inp.label]
-    kind = task(table, config)
+    label = head.column(inp.label).to_pandas()
+    kind = task(head, config)
     if kind == "regression":
         classes, y = [], label.to_numpy(np.float64)
         bins = label_bins(y)
@@ -301,17 +427,6 @@ def load_table(config: Config) -> RowFrame:
         y = pd.Categorical(label, categories=classes).codes.astype(np.int32)
         bins = None
 
-    X = np.empty((len(df), len(numeric) + len(categorical)), dtype=np.float32)
-    for j, name in enumerate(numeric):
-        X[:, j] = pd.to_numeric(df[name], errors="coerce").astype("float64").to_numpy(na_value=np.nan)
-    categories: dict[str, list] = {}
-    for j, name in enumerate(categorical, start=len(numeric)):
-        cat = pd.Categorical(df[name].astype("string"))
-        categories[name] = [str(c) for c in cat.categories]
-        codes = cat.codes.astype(np.float32)
-        codes[codes < 0] = np.nan
-        X[:, j] = codes
-
     holdout, fold = _split(row_id, y if bins is None else bins, config.holdout.fraction, config.proxy.folds, config.seed)
     return RowFrame(
         row_id=row_id, y=y, classes=classes, X=X,
@@ -319,6 +434,7 @@ def load_table(config: Config) -> RowFrame:
         categorical=list(range(len(numeric), len(numeric) + len(categorical))),
         categories=categories, holdout=holdout, fold=fold,
         fingerprint=fingerprint, source=source,
-        segments=_segment_codes(table, config.input.segments, path), segment_names=tuple(config.input.segments),
+        feature_hash=np.concatenate(feature_hashes) if feature_hashes else np.empty(0, np.uint64),
+        segments=_segment_codes(head, config.input.segments, path), segment_names=tuple(config.input.segments),
         task=kind, bins=bins,
     )
