@@ -34,7 +34,7 @@ from .config import Config, ExecutionConfig
 from .errors import ConfigError, LeansetError
 from .proxy import gbdt_params
 from .scores import Scores, score
-from .select import Selection, select_rows
+from .select import select_frame
 from .table import RowFrame, TableSource, _split, load_table
 
 #: Rows drawn per generator chunk. Fixed: the data depend on it, never on the number of files.
@@ -310,14 +310,6 @@ def bench_score(rows: int, features: int, classes: int, config: Config) -> Score
                       dynamics_seconds=seconds - threshold, threshold_seconds=threshold, plain_seconds=plain,
                       x_bytes=frame.X.nbytes, baseline_rss=baseline, score_peak_rss=score_peak,
                       plain_peak_rss=plain_peak, peak_reset=peak_reset)
-
-
-def select_frame(frame: RowFrame, scores: Scores, config: Config) -> Selection:
-    """The select stage on a loaded frame, with the same calls as ``flows.select_task`` (no Prefect)."""
-    train = frame.train
-    segments = None if frame.segments is None else frame.segments[train]
-    return select_rows(scores.difficulty(config.selection.score), frame.groups[train], config.selection, config.seed,
-                       suspect=scores.suspects(), segments=segments, X=frame.feature_hash[train])
 
 
 @dataclass(frozen=True)

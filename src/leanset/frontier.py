@@ -16,7 +16,7 @@ import pyarrow.parquet as pq
 
 from .config import Config
 from .scores import Scores
-from .select import select_rows
+from .select import select_frame
 from .table import RowFrame
 from .verify import compare, fit_timed, metric_interval, metric_value
 
@@ -37,9 +37,8 @@ class FractionEvaluator:
     def __init__(self, frame: RowFrame, scores: Scores, config: Config):
         self.frame, self.scores, self.config = frame, scores, config
         train, hold = frame.train, frame.holdout
-        self.X, self.y, self.groups = frame.features(train), frame.y[train], frame.groups[train]
+        self.X, self.y = frame.features(train), frame.y[train]
         self.X_hold, self.y_hold = frame.features(np.flatnonzero(hold)), frame.y[hold]
-        self.segments = None if frame.segments is None else frame.segments[train]
         self.segments_hold = None if frame.segments is None else frame.segments[hold]
         self.full_model_, self.full_seconds_ = fit_timed(self.X, self.y, None, len(frame.classes), frame.categorical,
                                                          config.target, config.seed)
@@ -61,9 +60,7 @@ class FractionEvaluator:
             kept = size
         else:
             sel_cfg = cfg.selection.model_copy(update={"fraction": fraction, "strategy": strategy})
-            sel = select_rows(self.scores.difficulty(cfg.selection.score), self.groups, sel_cfg, cfg.seed,
-                              suspect=self.scores.suspects(),
-                              segments=self.segments, X=self.frame.feature_hash[self.frame.train])
+            sel = select_frame(self.frame, self.scores, cfg, sel_cfg)
             idx = np.flatnonzero(sel.keep)
             w = sel.weight[idx]
             fits = [self._fit(idx, None if np.allclose(w, 1.0) else w, cfg.seed)]

@@ -26,7 +26,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 import pandas as pd
 
-from .config import SelectionConfig
+from .config import Config, SelectionConfig
 
 REASONS = {
     "keep:stratum": "kept to fill its class's budget evenly across difficulty strata (stratified)",
@@ -319,6 +319,16 @@ def select_rows(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, 
             fields[name] = value
     fields["info"] = {**sub.info, "suspect_dropped": int(suspect.sum())}
     return Selection(**fields)
+
+
+def select_frame(frame, scores, config: Config, selection: SelectionConfig | None = None) -> Selection:
+    """The select stage on a loaded ``RowFrame`` and its ``Scores``: difficulty by ``selection.score``,
+    quotas over classes (label bins on a regression table) and segments, duplicates by feature
+    hash, suspected label errors; ``selection`` replaces ``config.selection`` when given."""
+    train = frame.train
+    return select_rows(scores.difficulty(config.selection.score), frame.groups[train], selection or config.selection,
+                       config.seed, suspect=scores.suspects(),
+                       segments=None if frame.segments is None else frame.segments[train], X=frame.feature_hash[train])
 
 
 # --- Stable decisions over a growing table -------------------------------------------------
