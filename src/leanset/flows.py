@@ -15,14 +15,16 @@ import time  # noqa: E402
 from pathlib import Path  # noqa: E402
 from typing import Any  # noqa: E402
 
+import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
 from prefect import flow, task  # noqa: E402
 from prefect.cache_policies import NO_CACHE  # noqa: E402
+from prefect.context import FlowRunContext  # noqa: E402
 
 from .config import Config, load_config  # noqa: E402
 from .frontier import FractionEvaluator, frontier_files, search_fraction, sweep  # noqa: E402
 from .scores import Scores, agreement, score  # noqa: E402
-from .select import Selection, select_rows, stabilise  # noqa: E402
+from .select import Selection, select_frame, stabilise  # noqa: E402
 from .store import ParentRun, read_parent, store_lock, write_run  # noqa: E402
 from .table import RowFrame, load_table  # noqa: E402
 from .verify import Verdict, verify  # noqa: E402
@@ -44,6 +46,10 @@ def load_task(config: Config) -> RowFrame:
 
 @task(name="score", cache_policy=NO_CACHE)
 def score_task(frame: RowFrame, config: Config) -> Scores:
+    if config.execution.engine == "dask":
+        from .cluster import score as score_on_cluster
+        # the cluster of the DaskTaskRunner that dask_flow runs with
+        return score_on_cluster(frame, config, FlowRunContext.get().task_runner.client)
     return score(frame, config)
 
 
@@ -54,19 +60,14 @@ def agreement_task(frame: RowFrame, scores: Scores, config: Config) -> dict | No
 
 @task(name="select", cache_policy=NO_CACHE)
 def select_task(frame: RowFrame, scores: Scores, config: Config) -> Selection:
-    train = frame.train
-    segments = None if frame.segments is None else frame.segments[train]
-    # frame.groups: the classes, or label-quantile bins on a regression table
-    return select_rows(scores.difficulty(config.selection.score), frame.groups[train], config.selection, config.seed,
-                       suspect=scores.suspects(),
-                       segments=segments, X=frame.X[train])
+    return select_frame(frame, scores, config)
 
 
 @task(name="verify", cache_policy=NO_CACHE)
 def verify_task(frame: RowFrame, selection: Selection, config: Config, evaluator: FractionEvaluator | None) -> Verdict:
     train, hold = frame.train, frame.holdout
-    return verify(frame.X[train], frame.y[train], selection.keep, selection.weight,
-                  frame.X[hold], frame.y[hold], frame.classes, frame.categorical,
+    return verify(frame.features(train), frame.y[train], selection.keep, selection.weight,
+                  frame.features(np.flatnonzero(hold)), frame.y[hold], frame.classes, frame.categorical,
                   config.target, config.verify, config.seed,
                   None if frame.segments is None else frame.segments[hold], frame.segment_names,
                   full=None if evaluator is None else (evaluator.full_model_, evaluator.full_seconds_))
@@ -147,13 +148,35 @@ def _pipeline(config_path: str, overrides: dict[str, Any] | None, wait: float, f
 def prune_flow(config_path: str, overrides: dict[str, Any] | None = None, wait: float = 0.0) -> str:
     """One run: load, score, search the fraction when it is ``auto``, select (stable against the
     parent run), verify, write; returns the run directory."""
-    return _pipeline(config_path, overrides, wait, frontier=False)
+    return _on_engine(config_path, overrides, wait, frontier=False)
 
 
 @flow(name="leanset-frontier", log_prints=False)
 def frontier_flow(config_path: str, overrides: dict[str, Any] | None = None, wait: float = 0.0) -> str:
     """A run plus the frontier: every grid fraction × strategy, judged against one full-data fit."""
-    return _pipeline(config_path, overrides, wait, frontier=True)
+    return _on_engine(config_path, overrides, wait, frontier=True)
+
+
+@flow(name="leanset-dask", log_prints=False)
+def dask_flow(config_path: str, overrides: dict[str, Any] | None, wait: float, frontier: bool) -> str:
+    """The run's outline under a ``prefect_dask.DaskTaskRunner``, whose cluster the score stage uses."""
+    return _pipeline(config_path, overrides, wait, frontier)
+
+
+def _on_engine(config_path: str, overrides: dict[str, Any] | None, wait: float, frontier: bool) -> str:
+    """The run in the calling flow (``execution.engine: local``), or in :func:`dask_flow` on the
+    scheduler at ``execution.address`` or a local cluster of ``execution.workers`` processes (``dask``)."""
+    config = load_config(config_path, overrides)
+    execution = config.execution
+    if execution.engine == "local":
+        return _pipeline(config_path, overrides, wait, frontier)
+    from .cluster import check_config, local_cluster_kwargs
+    from prefect_dask import DaskTaskRunner
+
+    check_config(config)
+    runner = (DaskTaskRunner(address=execution.address) if execution.address
+              else DaskTaskRunner(cluster_kwargs=local_cluster_kwargs(execution)))
+    return dask_flow.with_options(task_runner=runner)(config_path, overrides, wait, frontier)
 
 
 @task(name="publish", cache_policy=NO_CACHE)

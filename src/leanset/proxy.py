@@ -162,13 +162,30 @@ def fit_gbdt(X, y, n_classes, categorical, config: ProxyConfig, seed: int, on_ch
         if (env.iteration + 1) % config.checkpoint_every == 0:
             t += 1
             raw = np.asarray(env.model._Booster__inner_predict(data_idx=0), dtype=np.float64)
-            if n_classes:
-                raw = np.maximum(_as_matrix(raw), _EPS)  # a fresh array: the booster's buffer stays untouched
-                np.log(raw, out=raw)
-            on_checkpoint(t, raw)
+            on_checkpoint(t, _LogProba(raw) if n_classes else raw)
 
     booster = lgb.train(params, data, num_boost_round=config.rounds, callbacks=[record])
-    return FittedProxy("gbdt", booster)
+    # a prediction-only copy: the trained booster's training scores, buffers and data are let go
+    return FittedProxy("gbdt", lgb.Booster(model_str=booster.model_to_string()))
+
+
+class _LogProba:
+    """Log-probabilities (n, k) of a booster's probability buffer, computed a slice at a time on
+    read, so no full-size copy is made; the buffer stays untouched."""
+
+    def __init__(self, p: np.ndarray):
+        self._p = p
+        self.shape = (len(p), 2) if p.ndim == 1 else p.shape
+
+    def __len__(self) -> int:
+        return self.shape[0]
+
+    def __getitem__(self, rows) -> np.ndarray:
+        z = np.maximum(_as_matrix(self._p[rows]), _EPS)
+        return np.log(z, out=z)
+
+    def __array__(self, dtype=None, copy=None) -> np.ndarray:
+        return self[:] if dtype is None else self[:].astype(dtype)
 
 
 def _linear_logits(pipe, X: np.ndarray) -> np.ndarray:

@@ -72,8 +72,8 @@ class Dynamics:
 
     def __init__(self, n: int, el2n_checkpoint: int):
         self.el2n_checkpoint = el2n_checkpoint
-        self.count = np.zeros(n, np.int64)
-        self.forgetting = np.zeros(n, np.int64)
+        self.count = np.zeros(n, np.int32)
+        self.forgetting = np.zeros(n, np.int32)
         self.ever_correct = np.zeros(n, bool)
         self.prev_correct = np.zeros(n, np.int8)  # -1: no previous checkpoint in this model
         self.margin_sum = np.zeros(n)
@@ -82,7 +82,7 @@ class Dynamics:
         self.p_mean = np.zeros(n)
         self.p_m2 = np.zeros(n)
         self.el2n_sum = np.zeros(n)
-        self.el2n_count = np.zeros(n, np.int64)
+        self.el2n_count = np.zeros(n, np.int32)
 
     def start_model(self, rows: np.ndarray) -> None:
         """Mark the start of a new model's checkpoints for ``rows``."""

@@ -31,7 +31,8 @@ class RowFrame:
 
     Attributes
     ----------
-    row_id : ndarray of str, shape (n,)
+    row_id : pandas.arrays.ArrowStringArray, shape (n,)
+        Row ids as Arrow strings (a Python object per row would outweigh the features).
     y : ndarray of int32, shape (n,)
         Label codes, indices into ``classes``; float64 label values on a regression table.
     classes : list
@@ -61,7 +62,7 @@ class RowFrame:
         A 64-bit hash of each row's feature values (NaN equal to NaN), to find exact duplicates.
     """
 
-    row_id: np.ndarray
+    row_id: pd.api.extensions.ExtensionArray | np.ndarray
     y: np.ndarray
     classes: list
     X: np.ndarray | None
@@ -107,8 +108,15 @@ class RowFrame:
             start += batch.num_rows
 
     def features(self, rows: np.ndarray) -> np.ndarray:
-        """The float32 features of ``rows`` (positions in table order)."""
-        return self.X[rows] if self.X is not None else self.encode(self.source.take(rows))
+        """The float32 features of ``rows`` (ascending positions in table order), gathered in one
+        pass over the batches when ``X`` is not in memory."""
+        if self.X is not None:
+            return self.X[rows]
+        out = np.empty((len(rows), len(self.feature_names)), np.float32)
+        for start, X in self.feature_batches():
+            lo, hi = np.searchsorted(rows, (start, start + len(X)))
+            out[lo:hi] = X[rows[lo:hi] - start]
+        return out
 
 
 def _dataset(path: Path) -> ds.Dataset:
@@ -265,14 +273,31 @@ def _row_hashes(df: pd.DataFrame) -> np.ndarray:
     return pd.util.hash_pandas_object(df, index=False).to_numpy(np.uint64)
 
 
-def _derive_ids(content: np.ndarray) -> np.ndarray:
+#: Rows per step where a whole-table step makes Python objects or hashes strings (bounds its temporaries).
+_STEP = 1 << 16
+
+
+_HEX = np.frombuffer(b"0123456789abcdef", dtype=np.uint8)
+_NIBBLES = np.arange(60, -4, -4, dtype=np.uint64)
+
+
+def _derive_ids(content: np.ndarray) -> pa.ChunkedArray:
+    """Row ids ``<content hash as 16 hex digits>-<occurrence>``, built without a Python object per row."""
     occurrence = pd.Series(content).groupby(content).cumcount().to_numpy()
-    return np.array([f"{h:016x}-{k}" for h, k in zip(content.tolist(), occurrence.tolist())], dtype=object)
+    chunks = []
+    for s in range(0, len(content), _STEP):
+        digits = _HEX[((content[s:s + _STEP, None] >> _NIBBLES) & np.uint64(15)).astype(np.uint8)]
+        hexes = pa.array(np.ascontiguousarray(digits).view("S16").ravel()).cast(pa.string())
+        chunks.append(pc.binary_join_element_wise(hexes, pa.array(occurrence[s:s + _STEP].astype("S20")).cast(pa.string()), "-"))
+    return pa.chunked_array(chunks, pa.string())
 
 
 def _split(row_id: np.ndarray, y: np.ndarray, fraction: float, folds: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
     """Stratified holdout and fold assignment from seeded hashes of the row ids."""
-    u = pd.util.hash_array(row_id, hash_key=_hash_key("holdout", seed))
+    key = _hash_key("holdout", seed)
+    # hashed a step at a time: a string array becomes Python objects only one step at a time
+    u = np.concatenate([pd.util.hash_array(np.asarray(row_id[s:s + _STEP], dtype=None if isinstance(row_id, np.ndarray) else object),
+                                           hash_key=key) for s in range(0, len(row_id), _STEP)] or [np.empty(0, np.uint64)])
     order = np.lexsort((u, y))  # by class, then hash
     counts = np.bincount(y)
     starts = np.concatenate(([0], np.cumsum(counts)[:-1]))
@@ -311,13 +336,13 @@ class TableSource:
     ----------
     dataset : pyarrow.dataset.Dataset
     path : Path
-    row_id : pyarrow.Array or None
+    row_id : pyarrow.ChunkedArray or None
         Derived row ids, appended as a ``row_id`` column; None when the table has its own id column.
     batch_rows : int
         Rows per record batch when reading in batches.
     """
 
-    def __init__(self, dataset: ds.Dataset, path: Path, row_id: pa.Array | None, batch_rows: int):
+    def __init__(self, dataset: ds.Dataset, path: Path, row_id: pa.ChunkedArray | None, batch_rows: int):
         self.dataset, self.path, self.row_id, self.batch_rows = dataset, path, row_id, batch_rows
 
     @property
@@ -328,7 +353,7 @@ class TableSource:
     def column(self, name: str) -> pa.ChunkedArray:
         """One column, read whole."""
         if name == "row_id" and self.row_id is not None:
-            return pa.chunked_array([self.row_id])
+            return self.row_id
         return _read(self.dataset, self.path, [name]).column(name)
 
     def take(self, indices) -> pa.Table:
@@ -399,9 +424,12 @@ def load_table(config: Config) -> RowFrame:
                 cat_cols[name].append(cats[name])
         if in_memory:
             blocks.append(block)
+    pa.default_memory_pool().release_unused()  # the pass's decoded row groups, cached by the allocator
     content = np.concatenate(hashes) if hashes else np.empty(0, np.uint64)
     schema = pa.schema([dataset.schema.field(c) for c in used])
-    fingerprint = hashlib.sha256(str(schema).encode() + content.tobytes()).hexdigest()[:32]
+    digest = hashlib.sha256(str(schema).encode())
+    digest.update(content)
+    fingerprint = digest.hexdigest()[:32]
     categories = {name: sorted(uniques[name]) for name in categorical}
     X = None
     if in_memory:
@@ -412,10 +440,12 @@ def load_table(config: Config) -> RowFrame:
             cats = pd.DataFrame({name: pd.concat(cat_cols[name], ignore_index=True) for name in categorical})
             X[:, len(numeric):] = _encode(cats, [], categorical, categories)
     if inp.id is None:
-        row_id = _derive_ids(content)
-        source.row_id = pa.array(row_id, pa.string())
+        ids = source.row_id = _derive_ids(content)
     else:
-        row_id = head.column(inp.id).to_pandas().astype(str).to_numpy(dtype=object)
+        ids = head.column(inp.id)
+        if not (pa.types.is_string(ids.type) or pa.types.is_large_string(ids.type)):
+            ids = pa.chunked_array([pa.array(ids.to_pandas().astype(str), pa.string())])
+    row_id = pd.arrays.ArrowStringArray(ids.cast(pa.string()))
 
     label = head.column(inp.label).to_pandas()
     kind = task(head, config)

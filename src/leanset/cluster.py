@@ -1,0 +1,368 @@
+"""Score stage on a Dask cluster (``execution.engine: dask``), for the gbdt proxy.
+
+The driver keeps only the small per-row arrays of the :class:`~leanset.table.RowFrame` (labels,
+folds, holdout). The input parquet files are cut into partitions of whole row groups, sliced to
+at most ``execution.batch_rows`` rows and spread over the workers; each worker reads its
+partitions, encodes them into float32 features as the load stage does, and keeps the training
+rows. A partition's place in table order is its row offset, so its training rows are one
+contiguous slice of ``frame.train``.
+
+Each fold model is one ``lightgbm.dask`` fit on the rows with fold != k. Its checkpoints are
+replayed on the workers, partition by partition: raw scores are predicted tree range by tree range
+(``checkpoint_every`` trees at a time) and summed, and folded into the same
+:class:`~leanset.scores.Dynamics` (:class:`~leanset.scores.ResidualDynamics` for regression) as
+the local score stage, so every column means what it means there. Out-of-fold predictions come
+from the same pass. Repeats and the AUM threshold samples run as in :func:`leanset.scores.score`.
+
+Partitions sit on fixed workers (partition i on the i-th worker, round robin) and LightGBM ranks
+the workers in partition order, so repeated runs on a cluster of the same size give the same
+models. The trees still differ from the local engine's: there LightGBM bins every feature once on
+all rows; here each fit bins its own rows, each feature on one worker's share of them. With one
+worker a fit equals a local ``lightgbm.train`` on the same rows; ``benchmarks/dask_agreement.py``
+measures how far either difference moves the kept set.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+import warnings
+from collections.abc import Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass
+from typing import Any
+
+import lightgbm as lgb
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.dataset as ds
+import pyarrow.parquet as pq
+
+from .config import SCORE_NAMES, Config, ExecutionConfig, ProxyConfig
+from .errors import ConfigError, InputError
+from .proxy import FittedProxy, _as_matrix, _two_column, gbdt_params, n_checkpoints
+from .scores import Dynamics, ResidualDynamics, Scores, _refold, margin, residual_band, stability
+from .table import RowFrame, _encode
+
+try:
+    import dask.array as da
+    from distributed import Client, Future, LocalCluster
+    from lightgbm.dask import DaskLGBMRegressor
+except ImportError:
+    raise ConfigError("execution.engine: dask needs the dask extra; pip install 'leanset[dask]' or set execution.engine local") from None
+
+
+def local_cluster_kwargs(execution: ExecutionConfig) -> dict[str, Any]:
+    """Keyword arguments of the ``distributed.LocalCluster`` started when ``execution.address`` is not set."""
+    return {"n_workers": execution.workers, "threads_per_worker": 1, "processes": True, "dashboard_address": ":0"}
+
+
+@contextmanager
+def open_client(execution: ExecutionConfig) -> Iterator[Client]:
+    """A client of the scheduler at ``execution.address``, or of a new local cluster; closed on exit.
+
+    The client does not become the process's default client; :func:`score` makes it current while it runs.
+    """
+    if execution.address:
+        with Client(execution.address, set_as_default=False) as client:
+            yield client
+        return
+    with LocalCluster(**local_cluster_kwargs(execution)) as cluster, Client(cluster, set_as_default=False) as client:
+        yield client
+
+
+def check_config(config: Config) -> None:
+    """Refuse what the dask score stage cannot run, before a cluster starts.
+
+    Raises
+    ------
+    ConfigError
+        For the linear proxy or a CSV input.
+    """
+    if config.proxy.family != "gbdt":
+        raise ConfigError("proxy.family linear runs on the local engine only; use gbdt or execution.engine local")
+    if config.input.path.is_file() and config.input.path.suffix.lower() in (".csv", ".tsv", ".txt"):
+        raise ConfigError(f"input.path: {config.input.path} is a CSV file and execution.engine dask reads parquet only; convert it to parquet or use execution.engine local")
+
+
+@dataclass(frozen=True)
+class Partition:
+    """Rows ``start`` .. ``start + rows`` of the table (in load order): row groups of one parquet
+    file, read whole, of which the partition skips the first ``skip`` rows."""
+
+    path: str
+    row_groups: tuple[int, ...]
+    skip: int
+    rows: int
+    start: int
+
+
+def partitions(path, size: int) -> list[Partition]:
+    """Cut the parquet file or folder at ``path`` into partitions of at most ``size`` rows, in table order."""
+    out, start = [], 0
+    for fragment in ds.dataset(path, format="parquet").get_fragments():
+        sizes = np.array([g.num_rows for g in fragment.row_groups], np.int64)
+        ends = np.cumsum(sizes)
+        total = int(sizes.sum())
+        for a in range(0, total, size):
+            b = min(a + size, total)
+            first, last = int(np.searchsorted(ends, a, side="right")), int(np.searchsorted(ends, b - 1, side="right"))
+            out.append(Partition(fragment.path, tuple(range(first, last + 1)), a - int(ends[first] - sizes[first]), b - a, start + a))
+        start += total
+    return out
+
+
+def read_partition(part: Partition, frame_spec: dict, y: np.ndarray, keep: np.ndarray) -> np.ndarray:
+    """Read ``part`` and return the features of its rows ``keep`` (a worker task).
+
+    ``y`` holds the label codes (or values) the load stage gave the partition's rows; the rows read
+    must carry the same labels, or the file changed since the load stage.
+    """
+    label = frame_spec["label"]
+    table = pq.ParquetFile(part.path).read_row_groups(list(part.row_groups), columns=[*frame_spec["feature_names"], label])
+    table = table.slice(part.skip, part.rows)
+    values = table.column(label).to_pandas()
+    read = values.to_numpy(np.float64) if frame_spec["regression"] else pd.Categorical(values, categories=frame_spec["classes"]).codes
+    if len(read) != len(y) or not np.array_equal(read, y):
+        raise InputError(f"{part.path}: rows {part.start}..{part.start + part.rows - 1} differ from the table the load stage read; rerun so both stages read the same file")
+    names, k = frame_spec["feature_names"], frame_spec["n_numeric"]
+    return _encode(table.take(pa.array(keep, pa.int64())).to_pandas(), names[:k], names[k:], frame_spec["categories"])
+
+
+def _take(X: np.ndarray, rows: np.ndarray) -> np.ndarray:
+    return X[rows]
+
+
+@dataclass
+class Shards:
+    """The training rows' features, held on the workers: shard i is rows ``bounds[i]`` of ``frame.train`` order."""
+
+    client: Client
+    futures: list[Future]
+    workers: list[str]
+    bounds: list[tuple[int, int]]
+    n_features: int
+
+    def fit_data(self, rows: np.ndarray, labels: np.ndarray) -> tuple[Any, Any]:
+        """Dask arrays of the features and ``labels`` of the rows where ``rows`` (bool, train order) is set."""
+        xs, ys = [], []
+        for fut, worker, (lo, hi) in zip(self.futures, self.workers, self.bounds):
+            sel = np.flatnonzero(rows[lo:hi])
+            if len(sel) == 0:
+                continue
+            x = self.client.submit(_take, fut, sel, workers=[worker], allow_other_workers=False)
+            [y] = self.client.scatter([labels[lo:hi][sel]], workers=[worker])
+            xs.append(da.from_delayed(x, shape=(len(sel), self.n_features), dtype=np.float32))
+            ys.append(da.from_delayed(y, shape=(len(sel),), dtype=labels.dtype))
+        return da.concatenate(xs), da.concatenate(ys)
+
+    def broadcast(self, value: Any) -> Future:
+        """``value`` copied to every worker once, for tasks to share."""
+        [future] = self.client.scatter([value], broadcast=True)
+        return future
+
+    def map(self, fn, *per_row: np.ndarray, **shared) -> list:
+        """``fn(X_shard, *slices, **shared)`` on every shard's worker, ``per_row`` arrays sliced to the shard; results in order."""
+        futures = [self.client.submit(fn, fut, *(a[lo:hi] for a in per_row), **shared, workers=[worker], allow_other_workers=False)
+                   for fut, worker, (lo, hi) in zip(self.futures, self.workers, self.bounds)]
+        return self.client.gather(futures)
+
+
+def load_shards(client: Client, frame: RowFrame, config: Config) -> Shards:
+    """Read the input on the workers: the training rows' features, partition by partition.
+
+    Raises
+    ------
+    InputError
+        When the files hold another number of rows than ``frame``.
+    """
+    workers = sorted(client.scheduler_info(n_workers=-1)["workers"])
+    if not workers:
+        raise ConfigError(f"execution.address: the scheduler at {config.execution.address} has no workers; start some, or leave execution.address unset for a local cluster")
+    n = len(frame.row_id)
+    parts = partitions(config.input.path, max(1, min(config.execution.batch_rows, math.ceil(n / len(workers)))))
+    total = sum(p.rows for p in parts)
+    if total != n:
+        raise InputError(f"{config.input.path}: holds {total} rows but the load stage read {n}; rerun so both stages read the same files")
+    spec = {"label": config.input.label, "feature_names": frame.feature_names, "n_numeric": len(frame.feature_names) - len(frame.categorical),
+            "categories": frame.categories, "classes": frame.classes, "regression": not frame.classes}
+    [spec] = client.scatter([spec], broadcast=True)
+    futures, placed, bounds, lo = [], [], [], 0
+    for i, part in enumerate(parts):
+        keep = np.flatnonzero(~frame.holdout[part.start:part.start + part.rows])
+        worker = workers[i % len(workers)]
+        futures.append(client.submit(read_partition, part, spec, frame.y[part.start:part.start + part.rows], keep,
+                                     workers=[worker], allow_other_workers=False))
+        placed.append(worker)
+        bounds.append((lo, lo + len(keep)))
+        lo += len(keep)
+    return Shards(client, futures, placed, bounds, len(frame.feature_names))
+
+
+class _AskedOrder:
+    """A client whose ``who_has`` answers in the order the futures were asked for.
+
+    ``lightgbm.dask`` ranks the LightGBM machines, and orders each machine's parts, by the order of
+    ``who_has``'s answer, which the scheduler gives in no fixed order; each machine bins its share
+    of the features from its own rows, so another rank order gives other trees. Asked order is
+    shard order: the worker of the first shard is rank 0, and each machine's rows are in table order.
+    """
+
+    def __init__(self, client: Client):
+        self._client = client
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._client, name)
+
+    def who_has(self, futures, **kwargs) -> dict:
+        found = self._client.who_has(futures, **kwargs)
+        return {f.key: found[f.key] for f in futures}
+
+
+def fit_booster(shards: Shards, rows: np.ndarray, labels: np.ndarray, n_classes: int, categorical: list[int],
+                config: ProxyConfig, seed: int) -> lgb.Booster:
+    """``lightgbm.dask`` fit of the gbdt proxy on the rows where ``rows`` is set, with the params of
+    :func:`leanset.proxy.gbdt_params` (objective and ``num_class`` included) and ``config.rounds`` trees.
+
+    Classes are fitted through ``DaskLGBMRegressor`` too: it hands the label codes to LightGBM as
+    they are, as ``lightgbm.train`` gets them locally, whereas ``DaskLGBMClassifier`` re-encodes
+    them on each worker from the classes that worker happens to hold.
+    """
+    model = DaskLGBMRegressor(client=_AskedOrder(shards.client), n_estimators=config.rounds, **gbdt_params(n_classes, config, seed))
+    X, y = shards.fit_data(rows, labels)
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message="Parameter .* will be ignored")
+        model.fit(X, y, categorical_feature=categorical or "auto")
+    return model.booster_
+
+
+def _checkpoints(booster: lgb.Booster, X: np.ndarray, n_classes: int, T: int, every: int) -> Iterator[np.ndarray]:
+    """Raw scores after each ``every`` trees, summed tree range by tree range; binary as logits [0, z]."""
+    z = np.zeros((len(X), n_classes) if n_classes > 2 else len(X))
+    for t in range(T):
+        z = z + booster.predict(X, raw_score=True, start_iteration=t * every, num_iteration=every)
+        yield _two_column(z) if n_classes else z
+
+
+def shard_scores(X: np.ndarray, y: np.ndarray, fold: np.ndarray, models: list[str], n_classes: int, T: int, every: int,
+                 el2n_at: int, band: float) -> pd.DataFrame:
+    """Scores of one shard's rows from the fold models (model texts, fold order): a worker task.
+
+    Columns as :func:`leanset.scores.score` computes them for one repeat, plus ``never_learned``.
+    """
+    n = len(y)
+    dyn = Dynamics(n, el2n_at) if n_classes else ResidualDynamics(n, el2n_at, band)
+    oof = np.empty((n, n_classes)) if n_classes else np.empty(n)
+    for k, text in enumerate(models):
+        booster = lgb.Booster(model_str=text)
+        fit_rows, out_rows = np.flatnonzero(fold != k), np.flatnonzero(fold == k)
+        dyn.start_model(fit_rows)
+        if len(fit_rows):  # LightGBM predicts shape (0,) for no rows, whatever the classes
+            for t, z in enumerate(_checkpoints(booster, X[fit_rows], n_classes, T, every), start=1):
+                dyn.update(t, fit_rows, z, y[fit_rows])
+        if len(out_rows):
+            pred = booster.predict(X[out_rows])
+            oof[out_rows] = _as_matrix(pred) if n_classes else pred
+    out = dyn.result(np.arange(n))
+    if n_classes:
+        out["oof_loss"] = -np.log(np.clip(oof[np.arange(n), y], np.finfo(np.float64).eps, 1.0))
+        out["oof_margin"] = margin(oof, y)
+    else:
+        out["oof_loss"] = (oof - y) ** 2
+        out["oof_margin"] = -np.abs(oof - y)
+    return pd.DataFrame(out)
+
+
+def shard_aum(X: np.ndarray, labels: np.ndarray, model: str, T: int, every: int) -> np.ndarray:
+    """AUM of one shard's rows under ``labels`` from one multiclass model (model text): a worker task."""
+    total = np.zeros(len(labels))
+    if not len(labels):
+        return total
+    booster = lgb.Booster(model_str=model)
+    for z in _checkpoints(booster, X, booster.num_model_per_iteration(), T, every):
+        total += margin(z, labels)
+    return total / T
+
+
+def _cross_fit(shards: Shards, y, fold, n_classes, categorical, pc: ProxyConfig, seeds) -> tuple[dict, list[lgb.Booster]]:
+    """One cross-fitting pass on the cluster: a fold model per fold, then every shard's scores."""
+    T = n_checkpoints(pc)
+    boosters = [fit_booster(shards, fold != k, y, n_classes, categorical, pc, seeds[k]) for k in range(pc.folds)]
+    band = 0.0 if n_classes else residual_band(y, pc)
+    frames = shards.map(shard_scores, y, fold, models=shards.broadcast([b.model_to_string() for b in boosters]),
+                        n_classes=n_classes, T=T, every=pc.checkpoint_every, el2n_at=max(1, int(round(pc.el2n_at * T))), band=band)
+    table = pd.concat(frames, ignore_index=True)
+    return {name: table[name].to_numpy() for name in table.columns}, boosters
+
+
+def threshold_samples(shards: Shards, y: np.ndarray, n_classes: int, categorical: list[int], config: ProxyConfig,
+                      seed: int) -> tuple[np.ndarray, dict]:
+    """:func:`leanset.scores.threshold_samples` with ``lightgbm.dask`` fits: same slices, seeds, cut-offs and verdicts."""
+    n, T = len(y), n_checkpoints(config)
+    rng = np.random.default_rng([seed, 0xA0C])
+    order = rng.permutation(n)
+    m = n // (n_classes + 1)
+    gap, judged, cutoffs = np.zeros(n), np.zeros(n, np.int64), []
+    for j in range(2):
+        fake = order[j * m:(j + 1) * m]
+        labels = y.astype(np.int32, copy=True)
+        labels[fake] = n_classes
+        booster = fit_booster(shards, np.ones(n, bool), labels, n_classes + 1, categorical, config, int(rng.integers(2**31)))
+        aum = np.concatenate(shards.map(shard_aum, labels, model=shards.broadcast(booster.model_to_string()), T=T, every=config.checkpoint_every))
+        cutoff = float(np.percentile(aum[fake], config.threshold_percentile))
+        real = np.ones(n, bool)
+        real[fake] = False
+        gap[real] += aum[real] - cutoff
+        judged[real] += 1
+        cutoffs.append(cutoff)
+    suspect = gap / np.maximum(judged, 1) < 0
+    return suspect, {"cutoffs": cutoffs, "threshold_rows": int(m), "suspects": int(suspect.sum()),
+                     "percentile": config.threshold_percentile}
+
+
+def score(frame: RowFrame, config: Config, client: Client) -> Scores:
+    """:func:`leanset.scores.score` on the Dask cluster of ``client``: same folds, seeds, columns and ``info`` keys.
+
+    Returns
+    -------
+    Scores
+        Proxies are the fold boosters of the first repeat.
+
+    Raises
+    ------
+    ConfigError
+        For the linear proxy or a CSV input (:func:`check_config`).
+    """
+    check_config(config)
+    with client.as_current():  # lightgbm.dask waits on futures through the current client
+        return _score(frame, config, client)
+
+
+def _score(frame: RowFrame, config: Config, client: Client) -> Scores:
+    pc = config.proxy
+    train = frame.train
+    y = frame.y[train]
+    n_classes = len(frame.classes)
+    shards = load_shards(client, frame, config)
+    runs, proxies = [], []
+    for r in range(pc.repeats):
+        if r == 0:
+            fold, seeds = frame.fold[train], [config.seed + k for k in range(pc.folds)]
+        else:
+            rng = np.random.default_rng([config.seed, 0x2E9, r])
+            fold, seeds = _refold(frame.groups[train], pc.folds, rng), [int(v) for v in rng.integers(2**31, size=pc.folds)]
+        out, boosters = _cross_fit(shards, y, fold, n_classes, frame.categorical, pc, seeds)
+        runs.append(out)
+        proxies = proxies or [FittedProxy("gbdt", b) for b in boosters]
+    table = pd.DataFrame({name: np.mean([o[name] for o in runs], axis=0) for name in SCORE_NAMES})
+    table["never_learned"] = np.logical_and.reduce([o["never_learned"] for o in runs])
+    info: dict = {"repeats": pc.repeats, "stability": stability(runs) if pc.repeats > 1 else None}
+    suspect = pd.array(np.full(len(y), pd.NA), dtype="boolean")
+    if pc.threshold_samples and n_classes:
+        t0 = time.perf_counter()
+        flags, info["label_errors"] = threshold_samples(shards, y, n_classes, frame.categorical, pc, config.seed)
+        info["timings"] = {"threshold_samples": round(time.perf_counter() - t0, 3)}
+        suspect = pd.array(flags, dtype="boolean")
+    table["suspect_label"] = suspect
+    return Scores(table=table, proxies=proxies, checkpoints=n_checkpoints(pc), info=info)
