@@ -4,7 +4,6 @@ of the manifests (pandas filters, merges and group-bys) and, for percentiles, ag
 
 import json
 
-import numpy as np
 import pandas as pd
 import pyarrow.parquet as pq
 import pytest

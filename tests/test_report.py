@@ -8,7 +8,7 @@ from html.parser import HTMLParser
 import pytest
 
 from leanset.report_html import CAUTIONS, SECTIONS
-from store_helpers import cli, config, part, published, run_ok
+from store_helpers import config, part, published, run_ok
 
 PNG = b"\x89PNG\r\n\x1a\n"  # the PNG signature (PNG specification, section 5.2)
 

@@ -33,7 +33,7 @@ from . import errors
 from .config import Config, ExecutionConfig
 from .errors import ConfigError, LeansetError
 from .proxy import gbdt_params
-from .scores import Scores, score
+from .scores import score
 from .select import select_frame
 from .table import RowFrame, TableSource, _split, load_table
 
@@ -288,7 +288,7 @@ def bench_score(rows: int, features: int, classes: int, config: Config) -> Score
     baseline = _rss()["VmRSS"]
 
     peak_reset = _reset_peak()
-    y, fold = frame.y[train], frame.fold[train]
+    fold = frame.fold[train]
     plain = 0.0
     for k in range(pc.folds):
         fit_rows = train[fold != k]

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import contextlib
+import logging
 import os
 from pathlib import Path
 from typing import Optional
@@ -65,10 +66,16 @@ def _launch(config: Path, overrides: dict, wait: float, verbose: bool, frontier:
     try:
         cfg = load_config(config, overrides)
         check_input(cfg)
+        if cfg.execution.engine == "dask":
+            from .cluster import check_config
+
+            check_config(cfg)
     except LeansetError as exc:
         _fail(exc)
     if not verbose:
         os.environ.setdefault("PREFECT_LOGGING_LEVEL", "WARNING")
+        os.environ.setdefault("DASK_LOGGING__DISTRIBUTED", "warning")  # read by the scheduler and worker processes too
+        logging.getLogger("distributed").setLevel(logging.WARNING)
     from .flows import frontier_flow, prune_flow
     from .report import frontier_table, read_run, summary
 

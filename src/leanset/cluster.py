@@ -42,7 +42,7 @@ import pyarrow.parquet as pq
 from .config import SCORE_NAMES, Config, ExecutionConfig, ProxyConfig
 from .errors import ConfigError, InputError
 from .proxy import FittedProxy, _as_matrix, _two_column, gbdt_params, n_checkpoints
-from .scores import Dynamics, ResidualDynamics, Scores, _refold, margin, residual_band, stability
+from .scores import Dynamics, ResidualDynamics, Scores, _refold, aum_cutoff, margin, residual_band, stability
 from .table import RowFrame, _encode
 
 try:
@@ -299,26 +299,12 @@ def _cross_fit(shards: Shards, y, fold, n_classes, categorical, pc: ProxyConfig,
 def threshold_samples(shards: Shards, y: np.ndarray, n_classes: int, categorical: list[int], config: ProxyConfig,
                       seed: int) -> tuple[np.ndarray, dict]:
     """:func:`leanset.scores.threshold_samples` with ``lightgbm.dask`` fits: same slices, seeds, cut-offs and verdicts."""
-    n, T = len(y), n_checkpoints(config)
-    rng = np.random.default_rng([seed, 0xA0C])
-    order = rng.permutation(n)
-    m = n // (n_classes + 1)
-    gap, judged, cutoffs = np.zeros(n), np.zeros(n, np.int64), []
-    for j in range(2):
-        fake = order[j * m:(j + 1) * m]
-        labels = y.astype(np.int32, copy=True)
-        labels[fake] = n_classes
-        booster = fit_booster(shards, np.ones(n, bool), labels, n_classes + 1, categorical, config, int(rng.integers(2**31)))
-        aum = np.concatenate(shards.map(shard_aum, labels, model=shards.broadcast(booster.model_to_string()), T=T, every=config.checkpoint_every))
-        cutoff = float(np.percentile(aum[fake], config.threshold_percentile))
-        real = np.ones(n, bool)
-        real[fake] = False
-        gap[real] += aum[real] - cutoff
-        judged[real] += 1
-        cutoffs.append(cutoff)
-    suspect = gap / np.maximum(judged, 1) < 0
-    return suspect, {"cutoffs": cutoffs, "threshold_rows": int(m), "suspects": int(suspect.sum()),
-                     "percentile": config.threshold_percentile}
+    T, every = n_checkpoints(config), config.checkpoint_every
+
+    def fit_aum(labels: np.ndarray, k: int, fit_seed: int) -> np.ndarray:
+        booster = fit_booster(shards, np.ones(len(y), bool), labels, k, categorical, config, fit_seed)
+        return np.concatenate(shards.map(shard_aum, labels, model=shards.broadcast(booster.model_to_string()), T=T, every=every))
+    return aum_cutoff(y, n_classes, config, seed, fit_aum)
 
 
 def score(frame: RowFrame, config: Config, client: Client) -> Scores:

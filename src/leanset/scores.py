@@ -32,6 +32,7 @@ from itertools import combinations
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 from scipy import stats
 
 from .config import Config, ProxyConfig, SCORE_NAMES
@@ -214,8 +215,20 @@ def threshold_samples(X, y: np.ndarray, n_classes: int, categorical: list[int], 
     info : dict
         The cut-off of each fit and the number of suspects.
     """
+    T, rows = n_checkpoints(config), np.arange(len(y))
+
+    def fit_aum(labels: np.ndarray, k: int, fit_seed: int) -> np.ndarray:
+        total, add = _margin_sums(len(y))
+        fit_proxy(X, labels, k, categorical, config, fit_seed, lambda t, z: add(rows, z, labels))
+        return total / T
+    return aum_cutoff(y, n_classes, config, seed, fit_aum)
+
+
+def aum_cutoff(y: np.ndarray, n_classes: int, config: ProxyConfig, seed: int,
+               fit_aum: Callable[[np.ndarray, int, int], np.ndarray]) -> tuple[np.ndarray, dict]:
+    """The threshold-sample procedure of :func:`threshold_samples` around ``fit_aum(labels, k, seed)``,
+    which fits a proxy with ``k`` classes on all rows and returns each row's AUM under ``labels``."""
     n = len(y)
-    T = n_checkpoints(config)
     rng = np.random.default_rng([seed, 0xA0C])
     order = rng.permutation(n)
     m = n // (n_classes + 1)
@@ -224,11 +237,7 @@ def threshold_samples(X, y: np.ndarray, n_classes: int, categorical: list[int], 
         fake = order[j * m:(j + 1) * m]
         labels = y.astype(np.int32, copy=True)
         labels[fake] = n_classes
-        total, add = _margin_sums(n)
-        rows = np.arange(n)
-        fit_proxy(X, labels, n_classes + 1, categorical, config, int(rng.integers(2**31)),
-                  lambda t, z: add(rows, z, labels))
-        aum = total / T
+        aum = fit_aum(labels, n_classes + 1, int(rng.integers(2**31)))
         cutoff = float(np.percentile(aum[fake], config.threshold_percentile))
         real = np.ones(n, bool)
         real[fake] = False
@@ -286,7 +295,7 @@ def _refold(groups: np.ndarray, folds: int, rng: np.random.Generator) -> np.ndar
 def _cross_fit(frame: RowFrame, binned, rows, y, fold, n_classes, pc: ProxyConfig, seeds: list[int]) -> tuple[dict, list[FittedProxy]]:
     """One cross-fitting pass: in-fold dynamics and out-of-fold scores of the training rows ``rows``.
 
-    The gbdt proxy trains on subsets of ``binned`` (all rows, binned once); the linear proxy on
+    The gbdt proxy trains on subsets of ``binned`` (the rows ``rows``, binned once); the linear proxy on
     copies of its fold's rows of ``frame.X``. Out-of-fold predictions take one pass over the
     feature batches, each row predicted by the fold model that never saw it.
     """
@@ -297,7 +306,7 @@ def _cross_fit(frame: RowFrame, binned, rows, y, fold, n_classes, pc: ProxyConfi
     for k in range(pc.folds):
         fit_rows = np.flatnonzero(fold != k)
         dyn.start_model(fit_rows)
-        data = binned.subset(rows[fit_rows]) if binned is not None else frame.X[rows[fit_rows]]
+        data = binned.subset(fit_rows) if binned is not None else frame.X[rows[fit_rows]]
         proxies.append(fit_proxy(data, y[fit_rows], n_classes, frame.categorical, pc, seeds[k],
                                  lambda t, z: dyn.update(t, fit_rows, z, y[fit_rows])))
         del data
@@ -354,8 +363,17 @@ def score(frame: RowFrame, config: Config) -> Scores:
                           f"raise execution.feature_memory_mb above {mb:,.0f} or use proxy.family gbdt")
     binned = None
     if pc.family == "gbdt":
-        binned = binned_dataset(frame.feature_batches, len(frame.y), frame.y, frame.categorical, pc, config.seed,
-                                config.execution.batch_rows)
+        binned = binned_dataset(lambda: frame.feature_batches(train_only=True), len(train), y, frame.categorical, pc,
+                                config.seed, config.execution.batch_rows)
+        pa.default_memory_pool().release_unused()  # the row groups read while binning
+    info: dict = {"repeats": pc.repeats, "stability": None}
+    suspect = pd.array(np.full(len(y), pd.NA), dtype="boolean")
+    if pc.threshold_samples and n_classes:  # first, while no per-row statistics are held
+        t0 = time.perf_counter()
+        flags, info["label_errors"] = threshold_samples(binned if binned is not None else frame.X[train], y, n_classes,
+                                                        frame.categorical, pc, config.seed)
+        info["timings"] = {"threshold_samples": round(time.perf_counter() - t0, 3)}
+        suspect = pd.array(flags, dtype="boolean")
     runs, proxies = [], []
     for r in range(pc.repeats):
         if r == 0:
@@ -366,17 +384,12 @@ def score(frame: RowFrame, config: Config) -> Scores:
         out, models = _cross_fit(frame, binned, train, y, fold, n_classes, pc, seeds)
         runs.append(out)
         proxies = proxies or models
+    del binned
     table = pd.DataFrame({name: np.mean([o[name] for o in runs], axis=0) for name in SCORE_NAMES})
     table["never_learned"] = np.logical_and.reduce([o["never_learned"] for o in runs])
-    info: dict = {"repeats": pc.repeats, "stability": stability(runs) if pc.repeats > 1 else None}
+    if pc.repeats > 1:
+        info["stability"] = stability(runs)
     del runs
-    suspect = pd.array(np.full(len(y), pd.NA), dtype="boolean")
-    if pc.threshold_samples and n_classes:
-        t0 = time.perf_counter()
-        data = binned.subset(train) if binned is not None else frame.X[train]
-        flags, info["label_errors"] = threshold_samples(data, y, n_classes, frame.categorical, pc, config.seed)
-        info["timings"] = {"threshold_samples": round(time.perf_counter() - t0, 3)}
-        suspect = pd.array(flags, dtype="boolean")
     table["suspect_label"] = suspect
     return Scores(table=table, proxies=proxies, checkpoints=n_checkpoints(pc), info=info)
 

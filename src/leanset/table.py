@@ -95,8 +95,17 @@ class RowFrame:
         names = self.feature_names
         return _encode(batch.select(names).to_pandas(), names[:k], names[k:], self.categories)
 
-    def feature_batches(self):
-        """Yield ``(start, X_batch)`` over all rows in table order: slices of ``X``, or batches read from disk."""
+    def feature_batches(self, train_only: bool = False):
+        """Yield ``(start, X_batch)`` over all rows in table order: slices of ``X``, or batches read
+        from disk. With ``train_only``, holdout rows are left out and ``start`` counts training rows."""
+        at = 0
+        for start, X in self._batches():
+            if train_only:
+                X = X[~self.holdout[start:start + len(X)]]
+            yield (at if train_only else start), X
+            at += len(X)
+
+    def _batches(self):
         if self.X is not None:
             step = self.source.batch_rows
             for start in range(0, len(self.X), step):
@@ -458,6 +467,7 @@ def load_table(config: Config) -> RowFrame:
         bins = None
 
     holdout, fold = _split(row_id, y if bins is None else bins, config.holdout.fraction, config.proxy.folds, config.seed)
+    pa.default_memory_pool().release_unused()
     return RowFrame(
         row_id=row_id, y=y, classes=classes, X=X,
         feature_names=numeric + categorical,
