@@ -32,13 +32,12 @@ from itertools import combinations
 
 import numpy as np
 import pandas as pd
-import pyarrow as pa
 from scipy import stats
 
 from .config import Config, ProxyConfig, SCORE_NAMES
 from .errors import ConfigError
 from .proxy import FittedProxy, binned_dataset, fit_proxy, n_checkpoints, softmax
-from .table import RowFrame
+from .table import RowFrame, release_memory
 from .verify import fit_target
 
 CHUNK = 65_536
@@ -123,8 +122,8 @@ class Dynamics:
         self.p_mean[rows] = mean
         self.count[rows] = n
 
-    def result(self, rows: np.ndarray) -> dict[str, np.ndarray]:
-        """The finished statistics of ``rows``."""
+    def result(self, rows) -> dict[str, np.ndarray]:
+        """The finished statistics of ``rows`` (an index array, or ``slice(None)`` for all rows)."""
         c = self.count[rows].astype(np.float64)
         forgetting = np.where(self.ever_correct[rows], self.forgetting[rows], self.count[rows]).astype(np.float64)
         return {
@@ -174,11 +173,11 @@ class ResidualDynamics:
                 d.el2n_count[r] += 1
             d.accumulate(r, res <= self.band, -res, p)
 
-    def result(self, rows: np.ndarray) -> dict[str, np.ndarray]:
+    def result(self, rows) -> dict[str, np.ndarray]:
         """The finished statistics of ``rows``."""
         out = self.core.result(rows)
-        out["confidence"] = np.full(len(rows), np.nan)
-        out["aleatoric"] = np.full(len(rows), np.nan)
+        out["confidence"] = np.full(len(out["aum"]), np.nan)
+        out["aleatoric"] = np.full(len(out["aum"]), np.nan)
         return out
 
 
@@ -305,22 +304,21 @@ def _cross_fit(frame: RowFrame, binned, rows, y, fold, n_classes, pc: ProxyConfi
     proxies = []
     for k in range(pc.folds):
         fit_rows = np.flatnonzero(fold != k)
+        y_fit = y[fit_rows]
         dyn.start_model(fit_rows)
         data = binned.subset(fit_rows) if binned is not None else frame.X[rows[fit_rows]]
-        proxies.append(fit_proxy(data, y[fit_rows], n_classes, frame.categorical, pc, seeds[k],
-                                 lambda t, z: dyn.update(t, fit_rows, z, y[fit_rows])))
+        proxies.append(fit_proxy(data, y_fit, n_classes, frame.categorical, pc, seeds[k],
+                                 lambda t, z: dyn.update(t, fit_rows, z, y_fit)))
         del data
+    out = dyn.result(slice(None))
+    del dyn
     oof = np.empty((n, n_classes)) if n_classes else np.empty(n)
-    where = np.full(len(frame.y), -1, np.int64)
-    where[rows] = np.arange(n)
-    for start, X in frame.feature_batches():
-        at = where[start:start + len(X)]
+    for start, X in frame.feature_batches(train_only=True):  # rows is frame.train, in order
+        here = fold[start:start + len(X)]
         for k, model in enumerate(proxies):
-            pick = np.flatnonzero(at >= 0)
-            pick = pick[fold[at[pick]] == k]
+            pick = np.flatnonzero(here == k)
             if len(pick):
-                oof[at[pick]] = model.predict_proba(X[pick]) if n_classes else model.predict(X[pick])
-    out = dyn.result(np.arange(n))
+                oof[start + pick] = model.predict_proba(X[pick]) if n_classes else model.predict(X[pick])
     if not n_classes:
         out["oof_loss"] = (oof - y) ** 2  # per-row squared error: averages to sklearn.metrics.mean_squared_error
         out["oof_margin"] = -np.abs(oof - y)
@@ -365,7 +363,7 @@ def score(frame: RowFrame, config: Config) -> Scores:
     if pc.family == "gbdt":
         binned = binned_dataset(lambda: frame.feature_batches(train_only=True), len(train), y, frame.categorical, pc,
                                 config.seed, config.execution.batch_rows)
-        pa.default_memory_pool().release_unused()  # the row groups read while binning
+        release_memory()  # the row groups read while binning
     info: dict = {"repeats": pc.repeats, "stability": None}
     suspect = pd.array(np.full(len(y), pd.NA), dtype="boolean")
     if pc.threshold_samples and n_classes:  # first, while no per-row statistics are held
@@ -385,7 +383,9 @@ def score(frame: RowFrame, config: Config) -> Scores:
         runs.append(out)
         proxies = proxies or models
     del binned
-    table = pd.DataFrame({name: np.mean([o[name] for o in runs], axis=0) for name in SCORE_NAMES})
+    # one repeat: its arrays become the columns as they are (copy=False), not a second copy
+    table = pd.DataFrame({name: runs[0][name] if len(runs) == 1 else np.mean([o[name] for o in runs], axis=0)
+                          for name in SCORE_NAMES}, copy=False)
     table["never_learned"] = np.logical_and.reduce([o["never_learned"] for o in runs])
     if pc.repeats > 1:
         info["stability"] = stability(runs)

@@ -6,6 +6,7 @@ not depend on row order or on how the table is cut into files.
 
 from __future__ import annotations
 
+import ctypes
 import hashlib
 from dataclasses import dataclass
 from pathlib import Path
@@ -326,6 +327,16 @@ def _segment_codes(table: pa.Table, names: list[str], path: Path) -> np.ndarray 
     return np.column_stack(codes).astype(np.int32)
 
 
+def release_memory() -> None:
+    """Hand memory freed by a whole-table pass back to the system: Arrow's pool keeps decoded row
+    groups, and glibc's heap keeps freed batch-sized blocks unless trimmed (no-op elsewhere)."""
+    pa.default_memory_pool().release_unused()
+    try:
+        ctypes.CDLL("libc.so.6").malloc_trim(0)
+    except (OSError, AttributeError):
+        pass
+
+
 def _encode(df: pd.DataFrame, numeric: list[str], categorical: list[str], categories: dict[str, list]) -> np.ndarray:
     """Float32 features of a frame of original columns: numbers as given, categories as codes (NaN for missing or unseen)."""
     X = np.empty((len(df), len(numeric) + len(categorical)), dtype=np.float32)
@@ -467,7 +478,7 @@ def load_table(config: Config) -> RowFrame:
         bins = None
 
     holdout, fold = _split(row_id, y if bins is None else bins, config.holdout.fraction, config.proxy.folds, config.seed)
-    pa.default_memory_pool().release_unused()
+    release_memory()
     return RowFrame(
         row_id=row_id, y=y, classes=classes, X=X,
         feature_names=numeric + categorical,
