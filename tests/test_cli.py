@@ -155,3 +155,22 @@ def test_class_too_small(tmp_path):
 def test_unsupported_feature_type(tmp_path):
     when = pd.date_range("2026-01-01", periods=600, freq="h")
     _bad(tmp_path, [_config(tmp_path, _table(tmp_path, seen_at=when))], "'seen_at'", "input.exclude")
+
+
+def test_streamed_run_writes_the_same_decisions_as_an_in_memory_run(prefect_api, tmp_path):
+    """A whole run with the features read from disk (``execution.feature_memory_mb: 0``) publishes a
+    conserved manifest and kept rows, with the same decisions as the run that held the matrix."""
+    table = _table(tmp_path, n=900)
+    manifests = []
+    for name, mb in (("memory", 1024), ("streamed", 0)):
+        cfg = _config(tmp_path, table, name=f"{name}.yaml", store=tmp_path / name,
+                      execution__feature_memory_mb=mb, execution__batch_rows=128)
+        result = runner.invoke(app, ["run", str(cfg)])
+        assert result.exit_code == 0, result.output
+        (run_dir,) = [p for p in (tmp_path / name / "runs").iterdir() if not p.name.startswith(".")]
+        manifests.append(pq.read_table(run_dir / "manifest.parquet").to_pandas())
+        kept = pq.read_table(run_dir / "kept.parquet").to_pandas()
+        assert len(kept) == (manifests[-1]["decision"] == "keep").sum()
+    memory, streamed = manifests
+    assert len(streamed) == 900 and streamed["row_id"].is_unique
+    pd.testing.assert_frame_equal(streamed[["row_id", "split", "decision", "reason"]], memory[["row_id", "split", "decision", "reason"]])

@@ -24,6 +24,7 @@ from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import OneHotEncoder, StandardScaler
 
 from .config import ProxyConfig
+from .table import release_memory
 
 Checkpoint = Callable[[int, np.ndarray], None]
 _EPS = 1e-300
@@ -166,7 +167,10 @@ def fit_gbdt(X, y, n_classes, categorical, config: ProxyConfig, seed: int, on_ch
 
     booster = lgb.train(params, data, num_boost_round=config.rounds, callbacks=[record])
     # a prediction-only copy: the trained booster's training scores, buffers and data are let go
-    return FittedProxy("gbdt", lgb.Booster(model_str=booster.model_to_string()))
+    model = lgb.Booster(model_str=booster.model_to_string())
+    del booster
+    release_memory()
+    return FittedProxy("gbdt", model)
 
 
 class _LogProba:
