@@ -42,7 +42,7 @@ import pyarrow.parquet as pq
 from .config import SCORE_NAMES, Config, ExecutionConfig, ProxyConfig
 from .errors import ConfigError, InputError
 from .proxy import FittedProxy, _as_matrix, _two_column, gbdt_params, n_checkpoints
-from .scores import Dynamics, ResidualDynamics, Scores, _refold, aum_cutoff, margin, residual_band, stability
+from .scores import Dynamics, ResidualDynamics, Scores, aum_cutoff, margin, repeat_folds, residual_band, stability
 from .table import RowFrame, _encode
 
 try:
@@ -333,11 +333,7 @@ def _score(frame: RowFrame, config: Config, client: Client) -> Scores:
     shards = load_shards(client, frame, config)
     runs, proxies = [], []
     for r in range(pc.repeats):
-        if r == 0:
-            fold, seeds = frame.fold[train], [config.seed + k for k in range(pc.folds)]
-        else:
-            rng = np.random.default_rng([config.seed, 0x2E9, r])
-            fold, seeds = _refold(frame.groups[train], pc.folds, rng), [int(v) for v in rng.integers(2**31, size=pc.folds)]
+        fold, seeds = repeat_folds(frame, config, r)
         out, boosters = _cross_fit(shards, y, fold, n_classes, frame.categorical, pc, seeds)
         runs.append(out)
         proxies = proxies or [FittedProxy("gbdt", b) for b in boosters]

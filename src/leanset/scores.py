@@ -291,6 +291,16 @@ def _refold(groups: np.ndarray, folds: int, rng: np.random.Generator) -> np.ndar
     return fold
 
 
+def repeat_folds(frame: RowFrame, config: Config, r: int) -> tuple[np.ndarray, list[int]]:
+    """Folds of the training rows and proxy seeds of cross-fitting pass ``r``: the load stage's
+    folds and ``seed + k`` first, then fresh seeded folds and seeds."""
+    train = frame.train
+    if r == 0:
+        return frame.fold[train], [config.seed + k for k in range(config.proxy.folds)]
+    rng = np.random.default_rng([config.seed, 0x2E9, r])
+    return _refold(frame.groups[train], config.proxy.folds, rng), [int(v) for v in rng.integers(2**31, size=config.proxy.folds)]
+
+
 def _cross_fit(frame: RowFrame, binned, rows, y, fold, n_classes, pc: ProxyConfig, seeds: list[int]) -> tuple[dict, list[FittedProxy]]:
     """One cross-fitting pass: in-fold dynamics and out-of-fold scores of the training rows ``rows``.
 
@@ -311,7 +321,7 @@ def _cross_fit(frame: RowFrame, binned, rows, y, fold, n_classes, pc: ProxyConfi
                                  lambda t, z: dyn.update(t, fit_rows, z, y_fit)))
         del data
     out = dyn.result(slice(None))
-    del dyn
+    dyn = None  # its running sums go before the out-of-fold pass allocates
     oof = np.empty((n, n_classes)) if n_classes else np.empty(n)
     for start, X in frame.feature_batches(train_only=True):  # rows is frame.train, in order
         here = fold[start:start + len(X)]
@@ -374,11 +384,7 @@ def score(frame: RowFrame, config: Config) -> Scores:
         suspect = pd.array(flags, dtype="boolean")
     runs, proxies = [], []
     for r in range(pc.repeats):
-        if r == 0:
-            fold, seeds = frame.fold[train], [config.seed + k for k in range(pc.folds)]
-        else:
-            rng = np.random.default_rng([config.seed, 0x2E9, r])
-            fold, seeds = _refold(frame.groups[train], pc.folds, rng), [int(v) for v in rng.integers(2**31, size=pc.folds)]
+        fold, seeds = repeat_folds(frame, config, r)
         out, models = _cross_fit(frame, binned, train, y, fold, n_classes, pc, seeds)
         runs.append(out)
         proxies = proxies or models
