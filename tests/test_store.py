@@ -304,3 +304,15 @@ def test_schedule_example_config_is_valid():
 
     cfg = load_config(Path(__file__).resolve().parents[1] / "configs" / "schedule.yaml")
     assert cfg.input.path.name == "pump_daily" and cfg.selection.hysteresis == 0.1
+
+
+def test_batch_and_memory_settings_leave_the_lineage_but_the_engine_does_not():
+    # batch size and streaming change no decision (tests/test_stream.py), so a run that only changes
+    # them keeps its history; the dask engine trains other proxies, so it starts its own lineage
+    from leanset.config import Config
+    from leanset.store import lineage
+
+    base = {"input": {"path": "t.parquet", "label": "y"}}
+    one = Config.model_validate(base)
+    assert lineage(one) == lineage(Config.model_validate({**base, "execution": {"batch_rows": 1000, "feature_memory_mb": 0}}))
+    assert lineage(one) != lineage(Config.model_validate({**base, "execution": {"engine": "dask"}}))

@@ -96,14 +96,18 @@ def new_run_id(config: Config, fingerprint: str) -> str:
 
 
 def lineage(config: Config) -> str:
-    """Hash of the config but ``store`` and ``selection.fraction``: the runs of one lineage form one history.
+    """Hash of the config but ``store``, ``selection.fraction`` and the batch and memory settings:
+    the runs of one lineage form one history.
 
     The fraction is left out so that a run whose fraction was searched (``auto``) or changed
     still links to its parent; its quotas change and :func:`leanset.select.stabilise` follows them.
+    ``execution.batch_rows`` and ``feature_memory_mb`` change no decision (``tests/test_stream.py``).
     """
     data = config.model_dump(mode="json")
     data.pop("store")
     data["selection"].pop("fraction")
+    for key in ("batch_rows", "feature_memory_mb"):
+        data["execution"].pop(key)
     return hashlib.sha256(json.dumps(data, sort_keys=True).encode()).hexdigest()[:16]
 
 
