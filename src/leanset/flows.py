@@ -66,8 +66,11 @@ def select_task(frame: RowFrame, scores: Scores, config: Config) -> Selection:
 @task(name="verify", cache_policy=NO_CACHE)
 def verify_task(frame: RowFrame, selection: Selection, config: Config, evaluator: FractionEvaluator | None) -> Verdict:
     train, hold = frame.train, frame.holdout
-    return verify(frame.features(train), frame.y[train], selection.keep, selection.weight,
-                  frame.features(np.flatnonzero(hold)), frame.y[hold], frame.classes, frame.categorical,
+    # the evaluator of a searched fraction already holds both feature sets
+    X, X_hold = ((evaluator.X, evaluator.X_hold) if evaluator is not None
+                 else frame.features(train, np.flatnonzero(hold)))
+    return verify(X, frame.y[train], selection.keep, selection.weight,
+                  X_hold, frame.y[hold], frame.classes, frame.categorical,
                   config.target, config.verify, config.seed,
                   None if frame.segments is None else frame.segments[hold], frame.segment_names,
                   full=None if evaluator is None else (evaluator.full_model_, evaluator.full_seconds_))

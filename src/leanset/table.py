@@ -117,16 +117,18 @@ class RowFrame:
             yield start, self.encode(batch)
             start += batch.num_rows
 
-    def features(self, rows: np.ndarray) -> np.ndarray:
-        """The float32 features of ``rows`` (ascending positions in table order), gathered in one
-        pass over the batches when ``X`` is not in memory."""
+    def features(self, *rows: np.ndarray):
+        """The float32 features of each of ``rows`` (ascending positions in table order), gathered in
+        one pass over the batches when ``X`` is not in memory; one array, or a tuple for several."""
         if self.X is not None:
-            return self.X[rows]
-        out = np.empty((len(rows), len(self.feature_names)), np.float32)
-        for start, X in self.feature_batches():
-            lo, hi = np.searchsorted(rows, (start, start + len(X)))
-            out[lo:hi] = X[rows[lo:hi] - start]
-        return out
+            out = tuple(self.X[r] for r in rows)
+        else:
+            out = tuple(np.empty((len(r), len(self.feature_names)), np.float32) for r in rows)
+            for start, X in self.feature_batches():
+                for r, o in zip(rows, out):
+                    lo, hi = np.searchsorted(r, (start, start + len(X)))
+                    o[lo:hi] = X[r[lo:hi] - start]
+        return out[0] if len(out) == 1 else out
 
 
 def _dataset(path: Path) -> ds.Dataset:
@@ -142,12 +144,15 @@ def _dataset(path: Path) -> ds.Dataset:
         raise InputError(f"{path}: cannot be read as parquet or CSV ({first}); check that the file is complete and in one of those formats") from None
 
 
+def _unreadable(path: Path, exc: Exception) -> InputError:
+    return InputError(f"{path}: cannot be read ({str(exc).splitlines()[0]}); check that the file is complete and not corrupt")
+
+
 def _read(dataset: ds.Dataset, path: Path, columns: list[str] | None = None) -> pa.Table:
     try:
         return dataset.to_table(columns=columns)
     except (pa.ArrowInvalid, OSError) as exc:
-        first = str(exc).splitlines()[0]
-        raise InputError(f"{path}: cannot be read ({first}); check that the file is complete and not corrupt") from None
+        raise _unreadable(path, exc) from None
 
 
 def _feature_columns(schema: pa.Schema, config: Config, path: Path) -> tuple[list[str], list[str]]:
@@ -382,7 +387,7 @@ class TableSource:
         try:
             table = self.dataset.take(indices)
         except (pa.ArrowInvalid, OSError) as exc:
-            raise InputError(f"{self.path}: cannot be read ({str(exc).splitlines()[0]}); check that the file is complete and not corrupt") from None
+            raise _unreadable(self.path, exc) from None
         if self.row_id is not None:
             table = table.append_column("row_id", self.row_id.take(indices))
         return table
@@ -402,7 +407,7 @@ class TableSource:
                 for group in range(reader.num_row_groups):
                     yield from reader.read_row_group(group, columns=columns, use_threads=False).to_batches(self.batch_rows)
         except (pa.ArrowInvalid, OSError) as exc:
-            raise InputError(f"{self.path}: cannot be read ({str(exc).splitlines()[0]}); check that the file is complete and not corrupt") from None
+            raise _unreadable(self.path, exc) from None
 
 
 def load_table(config: Config) -> RowFrame:
@@ -444,7 +449,7 @@ def load_table(config: Config) -> RowFrame:
                 cat_cols[name].append(cats[name])
         if in_memory:
             blocks.append(block)
-    pa.default_memory_pool().release_unused()  # the pass's decoded row groups, cached by the allocator
+    release_memory()  # the pass's decoded row groups and batch frames
     content = np.concatenate(hashes) if hashes else np.empty(0, np.uint64)
     schema = pa.schema([dataset.schema.field(c) for c in used])
     digest = hashlib.sha256(str(schema).encode())
