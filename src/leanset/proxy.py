@@ -131,13 +131,13 @@ class _BatchSequence(lgb.Sequence):
 
 def binned_dataset(batches: Callable[[], Any], n: int, label: np.ndarray, categorical: list[int],
                    config: ProxyConfig, seed: int, batch_size: int) -> lgb.Dataset:
-    """One LightGBM Dataset of all ``n`` rows, built from feature batches without holding them whole.
+    """One LightGBM Dataset of ``n`` rows, built from feature batches without holding them whole.
 
     ``batches()`` yields ``(start, X_batch)`` in row order. The folds and threshold-sample passes
     train on subsets of it (``Dataset.subset``), so the rows are binned once, with one set of bin
     edges. Bin edges use feature values only, never labels.
     """
-    params = {**gbdt_params(2, config, seed)}
+    params = gbdt_params(2, config, seed)
     data = lgb.Dataset(_BatchSequence(batches, n, batch_size), label=label, categorical_feature=categorical or "auto",
                        params={k: v for k, v in params.items() if k not in ("objective", "num_class")}, free_raw_data=True)
     return data.construct()
@@ -146,8 +146,8 @@ def binned_dataset(batches: Callable[[], Any], n: int, label: np.ndarray, catego
 def fit_gbdt(X, y, n_classes, categorical, config: ProxyConfig, seed: int, on_checkpoint: Checkpoint) -> FittedProxy:
     """Fit LightGBM for ``config.rounds`` rounds, reporting logits every ``checkpoint_every`` rounds.
 
-    ``X`` is a feature matrix, or a not yet constructed subset of :func:`binned_dataset`; either
-    way the fit's labels are ``y``. With ``n_classes`` 0 (regression) it reports the (n,)
+    ``X`` is a feature matrix, or :func:`binned_dataset`'s Dataset or a subset of it; either way
+    the fit's labels are ``y``. With ``n_classes`` 0 (regression) it reports the (n,)
     predicted values instead of logits.
     """
     params = gbdt_params(n_classes, config, seed)
