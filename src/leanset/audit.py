@@ -4,7 +4,8 @@ The catalog is a DuckDB connection over the store, built on demand: the view ``r
 row per published run (from each ``run.json``) and the view ``manifests`` reads every published
 run's ``manifest.parquet`` in place, with a ``run_id`` column; no data is copied. Runs being
 written (hidden ``.tmp-*`` folders) are never in the catalog. Every function returns plain,
-JSON-ready dicts and lists; the CLI prints them as tables or as JSON.
+JSON-ready dicts and lists; the CLI prints them as tables or as JSON. The questions of ``runs``,
+``why``, ``history`` and ``diff`` need neither pandas nor pyarrow, so the commands start quickly.
 
 >>> con = catalog("leanset-store")
 >>> con.sql("SELECT run_id, reason, count(*) FROM manifests GROUP BY ALL").show()
@@ -15,21 +16,41 @@ from __future__ import annotations
 import json
 import math
 from pathlib import Path
-from typing import Any, Sequence
+from typing import TYPE_CHECKING, Any, Sequence
 
 import duckdb
-import pandas as pd
-import pyarrow as pa
-import pyarrow.compute as pc
-import pyarrow.parquet as pq
 
 from .config import SCORE_NAMES, Config
 from .errors import StoreError
-from .store import published_runs
+
+if TYPE_CHECKING:
+    import pyarrow as pa
 
 #: Columns of the ``runs`` view (and of ``leanset runs``).
 RUN_COLUMNS = ("sequence", "run_id", "created", "parent_run", "rows", "train", "kept", "dropped", "holdout",
                "new_rows", "churn_rows", "churn_fraction", "verdict", "metric", "delta", "ci_low", "ci_high")
+_RUN_TYPES = ("INTEGER", "VARCHAR", "VARCHAR", "VARCHAR", "BIGINT", "BIGINT", "BIGINT", "BIGINT", "BIGINT",
+              "BIGINT", "BIGINT", "DOUBLE", "VARCHAR", "VARCHAR", "DOUBLE", "DOUBLE", "DOUBLE")
+
+
+def published_runs(store: Path) -> list[dict[str, Any]]:
+    """The run.json of every published run in ``store``, in publication order.
+
+    Hidden folders (runs being written, or left by a crash) are not runs.
+    """
+    runs = Path(store) / "runs"
+    found = []
+    if runs.is_dir():
+        for d in runs.iterdir():
+            if not d.name.startswith(".") and (d / "run.json").is_file() and (d / "manifest.parquet").is_file():
+                found.append(json.loads((d / "run.json").read_text()))
+    return sorted(found, key=lambda r: (r.get("sequence", 0), r["run_id"]))
+
+
+def _records(result: duckdb.DuckDBPyConnection) -> list[dict[str, Any]]:
+    """The rows of a query's result as dicts keyed by column name."""
+    names = [d[0] for d in result.description]
+    return [dict(zip(names, row)) for row in result.fetchall()]
 
 
 def _manifest(store: Path, run_id: str) -> str:
@@ -76,8 +97,9 @@ class Store:
         """The catalog: views ``runs`` and ``manifests``."""
         if self._con is None:
             con = duckdb.connect()
-            runs = pd.DataFrame([_run_row(r) for r in self.runs], columns=list(RUN_COLUMNS))
-            con.register("runs", runs)
+            con.execute(f"CREATE TABLE runs ({', '.join(f'{c} {t}' for c, t in zip(RUN_COLUMNS, _RUN_TYPES))})")
+            con.executemany(f"INSERT INTO runs VALUES ({', '.join('?' * len(RUN_COLUMNS))})",
+                            [[r[c] for c in RUN_COLUMNS] for r in map(_run_row, self.runs)])
             files = ", ".join(_sql_str(_manifest(self.path, r["run_id"])) for r in self.runs)
             con.execute(f"""CREATE VIEW manifests AS
                 SELECT regexp_extract(filename, '([^/\\\\]+)[/\\\\]manifest\\.parquet$', 1) AS run_id, * EXCLUDE (filename)
@@ -118,7 +140,7 @@ def _clean(value: Any) -> Any:
     return value
 
 
-def history(store: str | Path, row_id: str, _opened: Store | None = None) -> list[dict[str, Any]]:
+def history(store: str | Path, row_id: str) -> list[dict[str, Any]]:
     """The row's decision in every run of the store, in publication order.
 
     A run whose input did not hold the row has ``decision`` = ``absent``.
@@ -128,12 +150,12 @@ def history(store: str | Path, row_id: str, _opened: Store | None = None) -> lis
     StoreError
         When no run holds the row.
     """
-    s = _opened or Store(store)
-    found = s.con.execute("SELECT run_id, split, label, decision, reason, stratum, weight FROM manifests WHERE row_id = ?",
-                          [row_id]).df()
-    if found.empty:
+    s = Store(store)
+    found = _records(s.con.execute("SELECT run_id, split, label, decision, reason, stratum, weight FROM manifests WHERE row_id = ?",
+                                   [row_id]))
+    if not found:
         raise StoreError(f"row '{row_id}' is in no run of {s.path}; check the id (ids are compared as text)")
-    at = {r["run_id"]: r for r in found.to_dict("records")}
+    at = {r["run_id"]: r for r in found}
     out = []
     for run in s.runs:
         hit = at.get(run["run_id"])
@@ -163,42 +185,42 @@ def why(store: str | Path, row_id: str, run: str | None = None) -> dict[str, Any
         row's class, the range of the selection score of the rows given each reason.
     """
     s = Store(store)
-    if run is None:
-        present = [h for h in history(store, row_id, s) if h["decision"] != "absent"]
-        target = s.by_id[present[-1]["run_id"]]
-    else:
-        target = s.resolve(run)
-    path = _manifest(s.path, target["run_id"])
     con = s.con
-    rows = con.execute(f"SELECT * FROM read_parquet({_sql_str(path)}) WHERE row_id = ?", [row_id]).df()
-    if rows.empty:
-        raise StoreError(f"row '{row_id}' is not in run {target['run_id']}; 'leanset history {row_id}' shows the runs that hold it")
-    row = rows.iloc[0]
-    names = [n for n in SCORE_NAMES if n in rows.columns]
+    # newest run first: by default the search ends at the first (usually the latest) run holding the row
+    for target in [s.resolve(run)] if run else reversed(s.runs):
+        path = _manifest(s.path, target["run_id"])
+        rows = _records(con.execute(f"SELECT * FROM read_parquet({_sql_str(path)}) WHERE row_id = ?", [row_id]))
+        if rows:
+            break
+    else:
+        if run:
+            raise StoreError(f"row '{row_id}' is not in run {target['run_id']}; 'leanset history {row_id}' shows the runs that hold it")
+        raise StoreError(f"row '{row_id}' is in no run of {s.path}; check the id (ids are compared as text)")
+    row = rows[0]
+    names = [n for n in SCORE_NAMES if n in row]
     sel = target["config"]["selection"]
     out: dict[str, Any] = {
         "row_id": row_id, "run_id": target["run_id"], "created": target["created"],
         **{k: _clean(row[k]) for k in ("split", "label", "decision", "reason", "stratum", "weight")},
-        "scores": {n: _clean(row[n]) for n in [*names, "never_learned"] if n in rows.columns},
+        "scores": {n: _clean(row[n]) for n in [*names, "never_learned"] if n in row},
         "percentiles": {},
     }
     if row["split"] == "train":
         # within the row's class; a regression run has no classes, so among all its training rows
         by_class = row["label"] in target["input"].get("classes", [])
         where, params = ("split = 'train' AND label = ?", [row["label"]]) if by_class else ("split = 'train'", [])
-        known = [n for n in names if pd.notna(row[n])]
+        known = [n for n in names if _clean(row[n]) is not None]
         parts = ", ".join(f"count(*) FILTER (WHERE {n} < ?) AS {n}_lt, count(*) FILTER (WHERE {n} <= ?) AS {n}_le" for n in known)
         values = [float(row[n]) for n in known for _ in range(2)]
-        agg = con.execute(f"SELECT count(*) AS n{', ' if parts else ''}{parts} FROM read_parquet({_sql_str(path)}) WHERE {where}",
-                          values + params).df().iloc[0]
+        [agg] = _records(con.execute(f"SELECT count(*) AS n{', ' if parts else ''}{parts} FROM read_parquet({_sql_str(path)}) WHERE {where}",
+                                     values + params))
         n = int(agg["n"])
         out["percentiles"] = {k: 100.0 * (int(agg[f"{k}_lt"]) + int(agg[f"{k}_le"])) / (2 * n) for k in known}
         out["percentile_within"] = f"class {row['label']}" if by_class else "all training rows"
         score = sel["score"]
-        ranges = con.execute(f"SELECT reason, count(*) AS rows, min({score}) AS low, max({score}) AS high "
-                             f"FROM read_parquet({_sql_str(path)}) WHERE {where} GROUP BY reason ORDER BY reason", params).df()
-        by_reason = {r["reason"]: {"rows": int(r["rows"]), "low": _clean(r["low"]), "high": _clean(r["high"])}
-                     for r in ranges.to_dict("records")}
+        ranges = _records(con.execute(f"SELECT reason, count(*) AS rows, min({score}) AS low, max({score}) AS high "
+                                      f"FROM read_parquet({_sql_str(path)}) WHERE {where} GROUP BY reason ORDER BY reason", params))
+        by_reason = {r["reason"]: {"rows": int(r["rows"]), "low": _clean(r["low"]), "high": _clean(r["high"])} for r in ranges}
     else:
         by_reason = {}
     classes = target["input"]["classes"]
@@ -235,25 +257,25 @@ def diff(store: str | Path, run_a: str, run_b: str, limit: int = 20, out: str | 
         FROM (SELECT row_id, label, decision, reason FROM read_parquet({_sql_str(_manifest(s.path, a['run_id']))})) a
         FULL OUTER JOIN (SELECT row_id, label, decision, reason FROM read_parquet({_sql_str(_manifest(s.path, b['run_id']))})) b
         USING (row_id)""")
-    c = con.execute("""SELECT count(decision_a) AS rows_a, count(decision_b) AS rows_b,
+    [counts] = _records(con.execute("""SELECT count(decision_a) AS rows_a, count(decision_b) AS rows_b,
             count(*) FILTER (WHERE decision_a IS NOT NULL AND decision_b IS NOT NULL) AS both,
             count(*) FILTER (WHERE decision_b IS NULL) AS only_a,
             count(*) FILTER (WHERE decision_a IS NULL) AS only_b,
             count(*) FILTER (WHERE decision_a <> decision_b) AS changed,
-            count(*) FILTER (WHERE decision_a = decision_b) AS unchanged FROM pair""").df().iloc[0]
+            count(*) FILTER (WHERE decision_a = decision_b) AS unchanged FROM pair"""))
     changed = "decision_a <> decision_b"
-    trans = con.execute(f"""SELECT decision_a, reason_a, decision_b, reason_b, count(*) AS rows FROM pair
-        WHERE {changed} GROUP BY ALL ORDER BY rows DESC, reason_a, reason_b""").df()
-    rows = con.execute(f"SELECT row_id, label_b AS label, reason_a, reason_b FROM pair WHERE {changed} "
-                       "ORDER BY row_id LIMIT ?", [int(limit)]).df()
+    trans = _records(con.execute(f"""SELECT decision_a, reason_a, decision_b, reason_b, count(*) AS rows FROM pair
+        WHERE {changed} GROUP BY ALL ORDER BY rows DESC, reason_a, reason_b"""))
+    rows = _records(con.execute(f"SELECT row_id, label_b AS label, reason_a, reason_b FROM pair WHERE {changed} "
+                                "ORDER BY row_id LIMIT ?", [int(limit)]))
     if out is not None:
         con.execute(f"COPY (SELECT * FROM pair WHERE {changed} ORDER BY row_id) TO {_sql_str(str(out))} (FORMAT parquet)")
     con.execute("DROP TABLE pair")
-    counts = {k: int(c[k]) for k in c.index}
+    counts = {k: int(v) for k, v in counts.items()}
     counts["churn_fraction"] = counts["changed"] / counts["both"] if counts["both"] else 0.0
     return {"run_a": a["run_id"], "run_b": b["run_id"], "counts": counts,
-            "transitions": [{k: _clean(v) for k, v in r.items()} for r in trans.to_dict("records")],
-            "rows": [{k: _clean(v) for k, v in r.items()} for r in rows.to_dict("records")],
+            "transitions": [{k: _clean(v) for k, v in r.items()} for r in trans],
+            "rows": [{k: _clean(v) for k, v in r.items()} for r in rows],
             "out": str(out) if out is not None else None}
 
 
@@ -274,25 +296,23 @@ def restore_ids(store: str | Path, run: str, reasons: Sequence[str], _opened: St
     target = s.resolve(run)
     path = _manifest(s.path, target["run_id"])
     con = s.con
-    present = set(con.execute(f"SELECT DISTINCT reason FROM read_parquet({_sql_str(path)}) WHERE decision = 'drop'").df()["reason"])
+    present = {r["reason"] for r in _records(con.execute(
+        f"SELECT DISTINCT reason FROM read_parquet({_sql_str(path)}) WHERE decision = 'drop'"))}
     unknown = [r for r in reasons if r not in present]
     if unknown:
         raise StoreError(f"run {target['run_id']} dropped no row with reason {unknown[0]!r}; "
                          f"its drop reasons are: {', '.join(sorted(present)) or 'none'}")
-    picked = con.execute(f"""SELECT row_id, label, decision, reason FROM read_parquet({_sql_str(path)})
-        WHERE decision = 'keep' OR (decision = 'drop' AND list_contains(?, reason))""", [list(reasons)]).df()
-    picked = pa.Table.from_pandas(picked, preserve_index=False)
-    if target["config"]["selection"]["weights"] == "class_prior":
-        full = con.execute(f"SELECT label, count(*) AS n FROM read_parquet({_sql_str(path)}) WHERE split = 'train' GROUP BY label").df()
-        share = dict(zip(full["label"], full["n"] / full["n"].sum()))
-        labels = picked.column("label").to_pandas()
-        mine = labels.value_counts(normalize=True)
-        weight = labels.map(lambda c: share[c] / mine[c]).to_numpy(float)
-    else:
-        weight = [1.0] * picked.num_rows
-    picked = picked.append_column("weight", pa.array(weight, pa.float64()))
-    info = {"run_id": target["run_id"], "reasons": list(reasons), "rows": picked.num_rows,
-            "kept": int(pc.sum(pc.equal(picked.column("decision"), "keep")).as_py() or 0)}
+    prior = target["config"]["selection"]["weights"] == "class_prior"
+    picked = con.sql(f"""WITH m AS (SELECT * FROM read_parquet({_sql_str(path)}, file_row_number = true)),
+        picked AS (SELECT file_row_number, row_id, label, decision, reason FROM m
+                   WHERE decision = 'keep' OR (decision = 'drop' AND list_contains(?, reason))),
+        full_share AS (SELECT label, count(*) / sum(count(*)) OVER () AS share FROM m WHERE split = 'train' GROUP BY label),
+        own_share AS (SELECT label, count(*) / sum(count(*)) OVER () AS own FROM picked GROUP BY label)
+        SELECT row_id, label, decision, reason, {'share / own' if prior else '1.0'}::DOUBLE AS weight
+        FROM picked JOIN full_share USING (label) JOIN own_share USING (label) ORDER BY file_row_number""",
+                     params=[list(reasons)]).to_arrow_table()
+    decisions = picked.column("decision").to_pylist()
+    info = {"run_id": target["run_id"], "reasons": list(reasons), "rows": picked.num_rows, "kept": decisions.count("keep")}
     info["restored"] = info["rows"] - info["kept"]
     return info, picked
 
@@ -320,6 +340,8 @@ def restore(store: str | Path, run: str, reasons: Sequence[str], out: str | Path
 
         pacsv.write_csv(table, tmp, pacsv.WriteOptions(delimiter="\t" if out.suffix.lower() == ".tsv" else ","))
     else:
+        import pyarrow.parquet as pq
+
         pq.write_table(table, tmp)
     tmp.replace(out)
     return {**info, "out": str(out), "columns": table.column_names}
@@ -327,6 +349,9 @@ def restore(store: str | Path, run: str, reasons: Sequence[str], out: str | Path
 
 def _original_rows(run: dict[str, Any], picked: pa.Table) -> pa.Table:
     """The original columns of ``picked``'s rows, in the order of the input table, read with the run's config."""
+    import pandas as pd
+    import pyarrow as pa
+
     from .table import load_table
 
     config = Config.model_validate(run["config"])

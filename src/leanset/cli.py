@@ -1,4 +1,8 @@
-"""Command line: parses arguments and calls the flows; every LeansetError becomes one line and exit 2."""
+"""Command line: parses arguments and calls the flows; every LeansetError becomes one line and exit 2.
+
+Stage modules are imported inside the commands that use them, so the audit commands start
+without loading pandas, LightGBM or Prefect.
+"""
 
 from __future__ import annotations
 
@@ -14,7 +18,6 @@ from rich.console import Console
 
 from .config import load_config
 from .errors import LeansetError
-from .table import check_input
 
 app = typer.Typer(add_completion=False, no_args_is_help=True, help="Shrink a labeled table, verify the target model, record why.")
 _err = Console(stderr=True)
@@ -63,6 +66,8 @@ def frontier(
 
 def _launch(config: Path, overrides: dict, wait: float, verbose: bool, frontier: bool) -> None:
     """Check config and input before any flow starts, run the flow, print the summary."""
+    from .table import check_input
+
     try:
         cfg = load_config(config, overrides)
         check_input(cfg)

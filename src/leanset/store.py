@@ -27,6 +27,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from .audit import published_runs
 from .config import SCORE_NAMES, Config
 from .errors import StoreError
 from .select import Selection, class_percentile
@@ -109,20 +110,6 @@ def lineage(config: Config) -> str:
     for key in ("batch_rows", "feature_memory_mb"):
         data["execution"].pop(key)
     return hashlib.sha256(json.dumps(data, sort_keys=True).encode()).hexdigest()[:16]
-
-
-def published_runs(store: Path) -> list[dict[str, Any]]:
-    """The run.json of every published run in ``store``, in publication order.
-
-    Hidden folders (runs being written, or left by a crash) are not runs.
-    """
-    runs = Path(store) / "runs"
-    found = []
-    if runs.is_dir():
-        for d in runs.iterdir():
-            if not d.name.startswith(".") and (d / "run.json").is_file() and (d / "manifest.parquet").is_file():
-                found.append(json.loads((d / "run.json").read_text()))
-    return sorted(found, key=lambda r: (r.get("sequence", 0), r["run_id"]))
 
 
 @dataclass(frozen=True)
