@@ -251,31 +251,30 @@ def diff(store: str | Path, run_a: str, run_b: str, limit: int = 20, out: str | 
     s = Store(store)
     a, b = s.resolve(run_a), s.resolve(run_b)
     con = s.con
-    con.execute(f"""CREATE OR REPLACE TEMP TABLE pair AS
-        SELECT coalesce(a.row_id, b.row_id) AS row_id, a.label AS label_a, b.label AS label_b,
-               a.decision AS decision_a, a.reason AS reason_a, b.decision AS decision_b, b.reason AS reason_b
-        FROM (SELECT row_id, label, decision, reason FROM read_parquet({_sql_str(_manifest(s.path, a['run_id']))})) a
-        FULL OUTER JOIN (SELECT row_id, label, decision, reason FROM read_parquet({_sql_str(_manifest(s.path, b['run_id']))})) b
-        USING (row_id)""")
-    [counts] = _records(con.execute("""SELECT count(decision_a) AS rows_a, count(decision_b) AS rows_b,
-            count(*) FILTER (WHERE decision_a IS NOT NULL AND decision_b IS NOT NULL) AS both,
-            count(*) FILTER (WHERE decision_b IS NULL) AS only_a,
-            count(*) FILTER (WHERE decision_a IS NULL) AS only_b,
-            count(*) FILTER (WHERE decision_a <> decision_b) AS changed,
-            count(*) FILTER (WHERE decision_a = decision_b) AS unchanged FROM pair"""))
-    changed = "decision_a <> decision_b"
-    trans = _records(con.execute(f"""SELECT decision_a, reason_a, decision_b, reason_b, count(*) AS rows FROM pair
-        WHERE {changed} GROUP BY ALL ORDER BY rows DESC, reason_a, reason_b"""))
-    rows = _records(con.execute(f"SELECT row_id, label_b AS label, reason_a, reason_b FROM pair WHERE {changed} "
-                                "ORDER BY row_id LIMIT ?", [int(limit)]))
+    files = {side: f"read_parquet({_sql_str(_manifest(s.path, run['run_id']))})" for side, run in (("a", a), ("b", b))}
+    # one join, grouped by the pair of reasons: each group's size and, if its decision changed, its first row ids
+    groups = _records(con.execute(f"""SELECT a.decision AS decision_a, a.reason AS reason_a, b.decision AS decision_b,
+            b.reason AS reason_b, count(*) AS rows, min(row_id, ?) FILTER (WHERE a.decision <> b.decision) AS first_ids,
+            arg_min(b.label, row_id, ?) FILTER (WHERE a.decision <> b.decision) AS first_labels
+        FROM {files['a']} a JOIN {files['b']} b USING (row_id) GROUP BY ALL ORDER BY rows DESC, reason_a, reason_b""",
+                                  [max(int(limit), 1)] * 2))
+    trans = [g for g in groups if g["decision_a"] != g["decision_b"]]
+    rows_a, rows_b = (con.execute(f"SELECT count(*) FROM {files[side]}").fetchone()[0] for side in "ab")
+    both = sum(g["rows"] for g in groups)
+    changed = sum(g["rows"] for g in trans)
+    counts = {"rows_a": rows_a, "rows_b": rows_b, "both": both, "only_a": rows_a - both, "only_b": rows_b - both,
+              "changed": changed, "unchanged": both - changed}
+    first = sorted((row_id, label, g["reason_a"], g["reason_b"]) for g in trans
+                   for row_id, label in zip(g["first_ids"], g["first_labels"]))[:max(int(limit), 0)]
     if out is not None:
-        con.execute(f"COPY (SELECT * FROM pair WHERE {changed} ORDER BY row_id) TO {_sql_str(str(out))} (FORMAT parquet)")
-    con.execute("DROP TABLE pair")
-    counts = {k: int(v) for k, v in counts.items()}
+        con.execute(f"""COPY (SELECT row_id, a.label AS label_a, b.label AS label_b, a.decision AS decision_a, a.reason AS reason_a,
+                b.decision AS decision_b, b.reason AS reason_b
+            FROM {files['a']} a JOIN {files['b']} b USING (row_id) WHERE a.decision <> b.decision ORDER BY row_id)
+            TO {_sql_str(str(out))} (FORMAT parquet)""")
     counts["churn_fraction"] = counts["changed"] / counts["both"] if counts["both"] else 0.0
     return {"run_a": a["run_id"], "run_b": b["run_id"], "counts": counts,
-            "transitions": [{k: _clean(v) for k, v in r.items()} for r in trans],
-            "rows": [{k: _clean(v) for k, v in r.items()} for r in rows],
+            "transitions": [{k: _clean(t[k]) for k in ("decision_a", "reason_a", "decision_b", "reason_b", "rows")} for t in trans],
+            "rows": [dict(zip(("row_id", "label", "reason_a", "reason_b"), map(_clean, r))) for r in first],
             "out": str(out) if out is not None else None}
 
 
