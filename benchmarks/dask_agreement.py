@@ -6,7 +6,8 @@ config's selection, and prints the Jaccard index of the kept sets, the Spearman 
 (``scipy.stats.spearmanr``) of every score, the agreement of the suspected label errors, and
 whether a second Dask run repeats the first exactly. The one-worker cluster trains without
 distribution, so it separates what distributed training changes (one worker vs many) from what
-binning each fit's own rows changes (local, which bins all rows once, vs one worker).
+binning each fit's own rows changes (local, which bins all rows once, vs one worker). Last, the
+same with ``execution.dask_fits: fold_parallel`` (each fit whole on one worker, local bins).
 Figures, not tests.
 
     OMP_NUM_THREADS=1 python benchmarks/dask_agreement.py [--config configs/demo.yaml] [--workers 2] [--batch-rows N]
@@ -46,17 +47,17 @@ def main() -> None:
     local = scores.score(frame, config)
     seconds = {"local": time.perf_counter() - t0}
     runs = {}
-    for workers in dict.fromkeys((args.workers, 1)):
-        execution = config.execution.model_copy(update={"workers": workers})
+    for workers, fits in dict.fromkeys(((args.workers, "data_parallel"), (1, "data_parallel"), (args.workers, "fold_parallel"))):
+        execution = config.execution.model_copy(update={"workers": workers, "dask_fits": fits})
+        name = f"dask {workers}" + (" fold_parallel" if fits == "fold_parallel" else "")
         with cluster.open_client(execution) as client:
             t0 = time.perf_counter()
-            runs[workers] = cluster.score(frame, config.model_copy(update={"execution": execution}), client)
-            seconds[f"dask {workers}"] = time.perf_counter() - t0
-            if workers == args.workers:
+            runs[name] = cluster.score(frame, config.model_copy(update={"execution": execution}), client)
+            seconds[name] = time.perf_counter() - t0
+            if (workers, fits) == (args.workers, "data_parallel"):
                 again = cluster.score(frame, config.model_copy(update={"execution": execution}), client)
-    dask = runs[args.workers]
-    keep = {"local": select_frame(frame, local, config).keep,
-            **{f"dask {w}": select_frame(frame, s, config).keep for w, s in runs.items()}}
+    dask = runs[f"dask {args.workers}"]
+    keep = {"local": select_frame(frame, local, config).keep, **{w: select_frame(frame, s, config).keep for w, s in runs.items()}}
     print(f"{args.config.name}: {len(frame.row_id):,} rows, {len(frame.train):,} scored, {config.proxy.folds} folds, "
           f"{config.proxy.rounds} rounds; selection.score {config.selection.score}, strategy {config.selection.strategy}, "
           f"fraction {config.selection.fraction}")

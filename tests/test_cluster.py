@@ -210,3 +210,24 @@ def test_flow_on_dask_engine(prefect_api, setup, dask_scores):
     assert run_json(run_dir)["config"]["execution"]["engine"] == "dask"
     aum = m.set_index("row_id").loc[frame.row_id[frame.train], "aum"].to_numpy()
     np.testing.assert_array_equal(aum, dask_scores.table["aum"].to_numpy())
+
+
+def test_fold_parallel_fits_are_the_single_machine_models(setup, client):
+    """``execution.dask_fits: fold_parallel``: each fit runs whole on one worker, from the training
+    rows binned as the local engine bins them, so the fold models are the local engine's, the scores
+    equal its scores (to 1e-9: the workers replay the checkpoints) and the kept sets are the same
+    (Jaccard 1, ``sklearn.metrics.jaccard_score``). One LightGBM thread on both sides: the order of
+    floating-point sums is part of the model."""
+    _, config, frame = setup
+    config = config.model_copy(update={
+        "proxy": config.proxy.model_copy(update={"params": {**config.proxy.params, "num_threads": 1}}),
+        "execution": config.execution.model_copy(update={"dask_fits": "fold_parallel"})})
+    local = scores.score(frame, config)
+    got = cluster.score(frame, config, client)
+    assert [p.to_text() for p in got.proxies] == [p.to_text() for p in local.proxies]
+    for name in local.table.columns.drop("suspect_label"):
+        np.testing.assert_allclose(got.table[name].to_numpy(float), local.table[name].to_numpy(float), rtol=0, atol=1e-9,
+                                   err_msg=name)
+    assert got.info["label_errors"]["cutoffs"] == pytest.approx(local.info["label_errors"]["cutoffs"], abs=1e-9)
+    assert got.table["suspect_label"].equals(local.table["suspect_label"])
+    assert metrics.jaccard_score(select_frame(frame, local, config).keep, select_frame(frame, got, config).keep) == 1.0

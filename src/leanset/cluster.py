@@ -14,12 +14,20 @@ replayed on the workers, partition by partition: raw scores are predicted tree r
 the local score stage, so every column means what it means there. Out-of-fold predictions come
 from the same pass. Repeats and the AUM threshold samples run as in :func:`leanset.scores.score`.
 
-Partitions sit on fixed workers (partition i on the i-th worker, round robin) and LightGBM ranks
-the workers in partition order, so repeated runs on a cluster of the same size give the same
-models. The trees still differ from the local engine's: there LightGBM bins every feature once on
-all rows; here each fit bins its own rows, each feature on one worker's share of them. With one
-worker a fit equals a local ``lightgbm.train`` on the same rows; ``benchmarks/dask_agreement.py``
-measures how far either difference moves the kept set.
+How a proxy is fitted is ``execution.dask_fits``:
+
+- ``data_parallel`` (default): each fit is one ``lightgbm.dask`` fit over all workers, each holding
+  its own partitions; no worker needs the whole table. Partitions sit on fixed workers (partition
+  i on the i-th worker, round robin) and LightGBM ranks the workers in partition order, so
+  repeated runs on a cluster of the same size give the same models. The trees differ from the
+  local engine's: there LightGBM bins every feature once on all rows; here each fit bins its own
+  rows, each feature on one worker's share of them, and leaf sizes are estimated across workers.
+- ``fold_parallel``: each fit runs whole on one worker, the folds side by side on as many
+  workers; the worker reads the training rows and bins them as the local engine does, so the
+  models, and the decisions, are the local engine's. A worker must hold the binned training
+  rows (one byte per feature and row, about).
+
+``benchmarks/dask_agreement.py`` measures how far either moves the kept set.
 """
 
 from __future__ import annotations
@@ -29,7 +37,7 @@ import time
 import warnings
 from collections.abc import Iterator
 from contextlib import contextmanager
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import lightgbm as lgb
@@ -41,13 +49,13 @@ import pyarrow.parquet as pq
 
 from .config import SCORE_NAMES, Config, ExecutionConfig, ProxyConfig
 from .errors import ConfigError, InputError
-from .proxy import FittedProxy, _as_matrix, _two_column, gbdt_params, n_checkpoints
+from .proxy import FittedProxy, _as_matrix, _two_column, binned_dataset, fit_proxy, gbdt_params, n_checkpoints
 from .scores import Dynamics, ResidualDynamics, Scores, aum_cutoff, margin, repeat_folds, residual_band, stability
 from .table import RowFrame, _encode
 
 try:
     import dask.array as da
-    from distributed import Client, Future, LocalCluster
+    from distributed import Client, Future, LocalCluster, get_worker
     from lightgbm.dask import DaskLGBMRegressor
 except ImportError:
     raise ConfigError("execution.engine: dask needs the dask extra; pip install 'leanset[dask]' or set execution.engine local") from None
@@ -237,6 +245,43 @@ def fit_booster(shards: Shards, rows: np.ndarray, labels: np.ndarray, n_classes:
     return model.booster_
 
 
+def fit_whole(frame: RowFrame, rows: np.ndarray | None, labels: np.ndarray, n_classes: int, config: Config, seed: int) -> str:
+    """Fit one gbdt proxy whole, as the local engine does (a worker task); its model text.
+
+    The training rows are read and binned as :func:`leanset.scores.score` bins them, then the fit
+    runs on the rows ``rows`` (positions among the training rows; all when None) with ``labels``.
+    LightGBM gets the worker's thread count unless ``proxy.params`` sets ``num_threads``.
+    """
+    pc = config.proxy
+    pc = pc.model_copy(update={"params": {"num_threads": get_worker().state.nthreads, **pc.params}})
+    train = frame.train
+    binned = binned_dataset(lambda: frame.feature_batches(train_only=True), len(train), frame.y[train], frame.categorical,
+                            pc, config.seed, config.execution.batch_rows)
+    model = fit_proxy(binned if rows is None else binned.subset(rows), labels, n_classes, frame.categorical, pc, seed,
+                      lambda t, z: None)
+    return model.model.model_to_string()
+
+
+class Fitter:
+    """Fits the gbdt proxies of one score stage the way ``execution.dask_fits`` asks."""
+
+    def __init__(self, shards: Shards, frame: RowFrame, config: Config):
+        self.shards, self.config, self.categorical = shards, config, frame.categorical
+        self.whole = config.execution.dask_fits == "fold_parallel"
+        # the per-row arrays only: workers read the features themselves
+        self.frame = shards.broadcast(replace(frame, X=None)) if self.whole else None
+
+    def fit(self, jobs: list[tuple[np.ndarray, np.ndarray, int, int]]) -> list[str]:
+        """Model texts of one fit per ``(rows, labels, n_classes, seed)`` job: ``rows`` (bool, training
+        order) selects the rows and ``labels`` holds every training row's label."""
+        if not self.whole:
+            return [fit_booster(self.shards, rows, labels, k, self.categorical, self.config.proxy, seed).model_to_string()
+                    for rows, labels, k, seed in jobs]
+        futures = [self.shards.client.submit(fit_whole, self.frame, None if rows.all() else np.flatnonzero(rows), labels[rows],
+                                             k, self.config, seed, pure=False) for rows, labels, k, seed in jobs]
+        return self.shards.client.gather(futures)
+
+
 def _checkpoints(booster: lgb.Booster, X: np.ndarray, n_classes: int, T: int, every: int) -> Iterator[np.ndarray]:
     """Raw scores after each ``every`` trees, summed tree range by tree range; binary as logits [0, z]."""
     z = np.zeros((len(X), n_classes) if n_classes > 2 else len(X))
@@ -285,25 +330,26 @@ def shard_aum(X: np.ndarray, labels: np.ndarray, model: str, T: int, every: int)
     return total / T
 
 
-def _cross_fit(shards: Shards, y, fold, n_classes, categorical, pc: ProxyConfig, seeds) -> tuple[dict, list[lgb.Booster]]:
+def _cross_fit(fitter: Fitter, y, fold, n_classes, pc: ProxyConfig, seeds) -> tuple[dict, list[lgb.Booster]]:
     """One cross-fitting pass on the cluster: a fold model per fold, then every shard's scores."""
     T = n_checkpoints(pc)
-    boosters = [fit_booster(shards, fold != k, y, n_classes, categorical, pc, seeds[k]) for k in range(pc.folds)]
+    texts = fitter.fit([(fold != k, y, n_classes, seeds[k]) for k in range(pc.folds)])
     band = 0.0 if n_classes else residual_band(y, pc)
-    frames = shards.map(shard_scores, y, fold, models=shards.broadcast([b.model_to_string() for b in boosters]),
+    shards = fitter.shards
+    frames = shards.map(shard_scores, y, fold, models=shards.broadcast(texts),
                         n_classes=n_classes, T=T, every=pc.checkpoint_every, el2n_at=max(1, int(round(pc.el2n_at * T))), band=band)
     table = pd.concat(frames, ignore_index=True)
-    return {name: table[name].to_numpy() for name in table.columns}, boosters
+    return {name: table[name].to_numpy() for name in table.columns}, [lgb.Booster(model_str=t) for t in texts]
 
 
-def threshold_samples(shards: Shards, y: np.ndarray, n_classes: int, categorical: list[int], config: ProxyConfig,
-                      seed: int) -> tuple[np.ndarray, dict]:
-    """:func:`leanset.scores.threshold_samples` with ``lightgbm.dask`` fits: same slices, seeds, cut-offs and verdicts."""
+def threshold_samples(fitter: Fitter, y: np.ndarray, n_classes: int, config: ProxyConfig, seed: int) -> tuple[np.ndarray, dict]:
+    """:func:`leanset.scores.threshold_samples` with the cluster's fits: same slices, seeds, cut-offs and verdicts."""
     T, every = n_checkpoints(config), config.checkpoint_every
+    shards = fitter.shards
 
     def fit_aum(labels: np.ndarray, k: int, fit_seed: int) -> np.ndarray:
-        booster = fit_booster(shards, np.ones(len(y), bool), labels, k, categorical, config, fit_seed)
-        return np.concatenate(shards.map(shard_aum, labels, model=shards.broadcast(booster.model_to_string()), T=T, every=every))
+        [text] = fitter.fit([(np.ones(len(y), bool), labels, k, fit_seed)])
+        return np.concatenate(shards.map(shard_aum, labels, model=shards.broadcast(text), T=T, every=every))
     return aum_cutoff(y, n_classes, config, seed, fit_aum)
 
 
@@ -330,11 +376,11 @@ def _score(frame: RowFrame, config: Config, client: Client) -> Scores:
     train = frame.train
     y = frame.y[train]
     n_classes = len(frame.classes)
-    shards = load_shards(client, frame, config)
+    fitter = Fitter(load_shards(client, frame, config), frame, config)
     runs, proxies = [], []
     for r in range(pc.repeats):
         fold, seeds = repeat_folds(frame, config, r)
-        out, boosters = _cross_fit(shards, y, fold, n_classes, frame.categorical, pc, seeds)
+        out, boosters = _cross_fit(fitter, y, fold, n_classes, pc, seeds)
         runs.append(out)
         proxies = proxies or [FittedProxy("gbdt", b) for b in boosters]
     table = pd.DataFrame({name: np.mean([o[name] for o in runs], axis=0) for name in SCORE_NAMES})
@@ -343,7 +389,7 @@ def _score(frame: RowFrame, config: Config, client: Client) -> Scores:
     suspect = pd.array(np.full(len(y), pd.NA), dtype="boolean")
     if pc.threshold_samples and n_classes:
         t0 = time.perf_counter()
-        flags, info["label_errors"] = threshold_samples(shards, y, n_classes, frame.categorical, pc, config.seed)
+        flags, info["label_errors"] = threshold_samples(fitter, y, n_classes, pc, config.seed)
         info["timings"] = {"threshold_samples": round(time.perf_counter() - t0, 3)}
         suspect = pd.array(flags, dtype="boolean")
     table["suspect_label"] = suspect
