@@ -1,5 +1,5 @@
 """Streaming: the same decisions whatever the batch size and whether the features sit in memory,
-and a score stage that completes on a table larger than the process's memory cap."""
+and a run (score, select, verify) that completes on a table larger than the process's memory cap."""
 
 from __future__ import annotations
 
@@ -20,7 +20,8 @@ from sklearn.datasets import load_digits
 from leanset.config import Config
 from leanset.scores import score
 from leanset.select import select_frame
-from leanset.table import load_table
+from leanset.table import RowView, load_table
+from leanset.verify import verify
 
 
 def _digits_folder(tmp_path: Path) -> Path:
@@ -72,18 +73,49 @@ def test_same_ids_holdout_scores_and_decisions_at_any_batch_size_streamed_or_not
     np.testing.assert_array_equal(f0.features(rows), in_memory.X[rows])
 
 
+def test_verify_streams_the_training_rows_with_the_same_verdict(tmp_path):
+    """With the features not held, the target trains on a view of the training rows that LightGBM
+    reads batch by batch (its ``Sequence`` interface); on 1,797 rows (under LightGBM's 200,000-row
+    bin sample) its bins, models and verdict equal those of the matrix in memory."""
+    folder = _digits_folder(tmp_path)
+    verdicts = {}
+    for memory_mb in (0, 1024):
+        frame, _, selection = _run(folder, 1_000, memory_mb)
+        cfg = Config.model_validate({"input": {"path": str(folder), "label": "target"},
+                                     "target": {"params": {"num_boost_round": 30, "num_threads": 1}}, "verify": {"bootstrap": 200}})
+        train, hold = frame.train, np.flatnonzero(frame.holdout)
+        X = frame.feature_rows(train)
+        assert isinstance(X, RowView) == (memory_mb == 0)
+        if memory_mb == 0:
+            pick = np.flatnonzero(selection.keep)
+            np.testing.assert_array_equal(np.asarray(X[pick]), frame.features(train[pick]))
+            assert sum(len(b) for _, b in X[pick].batches()) == len(pick)
+        verdicts[memory_mb] = verify(X, frame.y[train], selection.keep, selection.weight, frame.features(hold), frame.y[hold],
+                                     frame.classes, frame.categorical, cfg.target, cfg.verify, cfg.seed).to_dict()
+    streamed, held = verdicts[0], verdicts[1024]
+    streamed.pop("train_seconds"), held.pop("train_seconds"), streamed.pop("speedup"), held.pop("speedup")
+    assert streamed == held
+
+
 _CHILD = """
 import json, sys
 from pathlib import Path
+import numpy as np
 from leanset.config import Config
 from leanset.scores import score
+from leanset.select import select_frame
 from leanset.table import load_table
+from leanset.verify import verify
 cfg = Config.model_validate(json.loads(sys.argv[1]))
 frame = load_table(cfg)
 scores = score(frame, cfg)
+selection = select_frame(frame, scores, cfg)
+train, hold = frame.train, np.flatnonzero(frame.holdout)
+verdict = verify(frame.feature_rows(train), frame.y[train], selection.keep, selection.weight, frame.features(hold),
+                 frame.y[hold], frame.classes, frame.categorical, cfg.target, cfg.verify, cfg.seed)
 status = dict(line.split(":", 1) for line in Path("/proc/self/status").read_text().splitlines())
 print(json.dumps({"streamed": frame.X is None, "scored": len(scores.table), "train": len(frame.train),
-                  "peak_kib": int(status["VmPeak"].split()[0])}))
+                  "kept": int(selection.keep.sum()), "verdict": verdict.status, "peak_kib": int(status["VmPeak"].split()[0])}))
 """
 
 
@@ -91,6 +123,8 @@ def _child(folder: Path, feature_memory_mb: float, cap: int | None) -> subproces
     cfg = {"input": {"path": str(folder), "label": "label"},
            "proxy": {"folds": 2, "rounds": 4, "checkpoint_every": 2, "threshold_samples": False, "agreement_rows": 0,
                      "params": {"bin_construct_sample_cnt": 5000}},
+           "target": {"params": {"num_boost_round": 5, "bin_construct_sample_cnt": 5000}},
+           "verify": {"bootstrap": 100, "random_repeats": 1},
            "execution": {"batch_rows": 5000, "feature_memory_mb": feature_memory_mb}}
 
     def limit():
@@ -116,7 +150,7 @@ def _invented(folder: Path, rows: int, features: int, seed: int) -> int:
 
 
 @pytest.mark.skipif(not Path("/proc/self/status").exists(), reason="reads VmPeak from /proc (Linux)")
-def test_score_stage_completes_on_a_table_larger_than_the_memory_cap(tmp_path):
+def test_score_select_and_verify_complete_on_a_table_larger_than_the_memory_cap(tmp_path):
     # The cap is the address space a run on a 3,000-row slice needs, plus less than the whole
     # table's float32 matrix: holding the matrix must fail, streaming it must not.
     small, big = tmp_path / "small", tmp_path / "big"
@@ -131,3 +165,4 @@ def test_score_stage_completes_on_a_table_larger_than_the_memory_cap(tmp_path):
     assert streamed.returncode == 0, streamed.stderr[-2000:]
     out = json.loads(streamed.stdout.splitlines()[-1])
     assert out["streamed"] and out["scored"] == out["train"] == 96_000
+    assert out["kept"] > 0 and out["verdict"] in ("pass", "fail", "inconclusive")

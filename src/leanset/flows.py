@@ -68,7 +68,7 @@ def verify_task(frame: RowFrame, selection: Selection, config: Config, evaluator
     train, hold = frame.train, frame.holdout
     # the evaluator of a searched fraction already holds both feature sets
     X, X_hold = ((evaluator.X, evaluator.X_hold) if evaluator is not None
-                 else frame.features(train, np.flatnonzero(hold)))
+                 else (frame.feature_rows(train), frame.features(np.flatnonzero(hold))))
     return verify(X, frame.y[train], selection.keep, selection.weight,
                   X_hold, frame.y[hold], frame.classes, frame.categorical,
                   config.target, config.verify, config.seed,

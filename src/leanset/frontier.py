@@ -37,7 +37,7 @@ class FractionEvaluator:
     def __init__(self, frame: RowFrame, scores: Scores, config: Config):
         self.frame, self.scores, self.config = frame, scores, config
         train, hold = frame.train, frame.holdout
-        self.X, self.X_hold = frame.features(train, np.flatnonzero(hold))
+        self.X, self.X_hold = frame.feature_rows(train), frame.features(np.flatnonzero(hold))
         self.y, self.y_hold = frame.y[train], frame.y[hold]
         self.segments_hold = None if frame.segments is None else frame.segments[hold]
         self.full_model_, self.full_seconds_ = fit_timed(self.X, self.y, None, len(frame.classes), frame.categorical,

@@ -94,7 +94,7 @@ def gbdt_params(n_classes: int, config: ProxyConfig, seed: int) -> dict[str, Any
     return params
 
 
-class _BatchSequence(lgb.Sequence):
+class BatchSequence(lgb.Sequence):
     """LightGBM's ``Sequence`` over a stream of feature batches: rows served from a cursor that
     moves forward batch by batch and restarts the stream when asked for an earlier row.
 
@@ -138,7 +138,7 @@ def binned_dataset(batches: Callable[[], Any], n: int, label: np.ndarray, catego
     edges. Bin edges use feature values only, never labels.
     """
     params = gbdt_params(2, config, seed)
-    data = lgb.Dataset(_BatchSequence(batches, n, batch_size), label=label, categorical_feature=categorical or "auto",
+    data = lgb.Dataset(BatchSequence(batches, n, batch_size), label=label, categorical_feature=categorical or "auto",
                        params={k: v for k, v in params.items() if k not in ("objective", "num_class")}, free_raw_data=True)
     return data.construct()
 

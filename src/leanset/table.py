@@ -130,6 +130,45 @@ class RowFrame:
                     o[lo:hi] = X[r[lo:hi] - start]
         return out[0] if len(out) == 1 else out
 
+    def feature_rows(self, rows: np.ndarray):
+        """The float32 features of ``rows`` (ascending positions in table order): an array when ``X``
+        is in memory, else a :class:`RowView` that reads them from disk when used."""
+        return self.X[rows] if self.X is not None else RowView(self, rows)
+
+
+class RowView:
+    """Rows of a :class:`RowFrame` whose features are not held, read in batches when used.
+
+    ``view[idx]`` is the view of those of its rows (``idx`` ascending), ``np.asarray(view)``
+    gathers them, and :meth:`batches` streams them, so LightGBM can train on any subset of a
+    table larger than memory through its ``Sequence`` interface.
+    """
+
+    def __init__(self, frame: RowFrame, rows: np.ndarray):
+        self.frame, self.rows = frame, np.asarray(rows)
+        self.batch_rows = frame.source.batch_rows
+
+    def __len__(self) -> int:
+        return len(self.rows)
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return len(self.rows), len(self.frame.feature_names)
+
+    def __getitem__(self, idx) -> RowView:
+        return RowView(self.frame, self.rows[idx])
+
+    def __array__(self, dtype=None, copy=None) -> np.ndarray:
+        X = self.frame.features(self.rows)
+        return X if dtype is None else X.astype(dtype, copy=False)
+
+    def batches(self):
+        """Yield ``(start, X_batch)``: the view's rows in order, ``start`` counting them."""
+        for start, X in self.frame.feature_batches():
+            lo, hi = np.searchsorted(self.rows, (start, start + len(X)))
+            if hi > lo:
+                yield int(lo), X[self.rows[lo:hi] - start]
+
 
 def _dataset(path: Path) -> ds.Dataset:
     if not path.exists():

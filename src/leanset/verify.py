@@ -21,6 +21,8 @@ from sklearn import metrics
 
 from .config import REGRESSION_METRICS, TargetConfig, VerifyConfig
 from .errors import ConfigError
+from .proxy import BatchSequence
+from .table import RowView
 
 LIGHTGBM_DEFAULTS: dict[str, Any] = {
     "learning_rate": 0.05, "num_leaves": 63, "min_data_in_leaf": 20, "feature_fraction": 0.9,
@@ -156,7 +158,13 @@ def _sklearn_estimator(config: TargetConfig, seed: int):
 
 def fit_target(X: np.ndarray, y: np.ndarray, weight: np.ndarray | None, n_classes: int,
                categorical: list[int], config: TargetConfig, seed: int) -> FittedTarget:
-    """Train the configured target on (X, y) with optional per-row weights."""
+    """Train the configured target on (X, y) with optional per-row weights.
+
+    ``X`` may be a :class:`~leanset.table.RowView` (features not held): LightGBM then reads it
+    through its ``Sequence`` interface, batch by batch; a scikit-learn estimator gets it gathered.
+    """
+    if isinstance(X, RowView):
+        X = np.asarray(X) if config.family == "sklearn" else BatchSequence(X.batches, len(X), X.batch_rows)
     if config.family == "sklearn":
         est = _sklearn_estimator(config, seed)
         est.fit(X, y, sample_weight=weight) if weight is not None else est.fit(X, y)
@@ -320,7 +328,7 @@ def verify(X_train: np.ndarray, y_train: np.ndarray, keep: np.ndarray, weight: n
 
     Parameters
     ----------
-    X_train, y_train : ndarray, shapes (n, f) and (n,)
+    X_train, y_train : ndarray or RowView, and ndarray; shapes (n, f) and (n,)
         All training rows.
     keep : ndarray of bool, shape (n,)
     weight : ndarray of float, shape (n,)
