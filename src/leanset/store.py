@@ -267,6 +267,19 @@ def write_run(frame: RowFrame, scores: Scores, selection: Selection, verdict: Ve
         return _write_locked(frame, scores, selection, verdict, config, timings, parent, extra or {}, files or {})
 
 
+def _write_kept(frame: RowFrame, selection: Selection, path: Path, row_group_size: int) -> None:
+    """The kept rows with every original column, plus ``weight`` and ``dup_count``, written as they are read."""
+    weight, dup_count = selection.weight[selection.keep], selection.dup_count[selection.keep]
+    schema = frame.source.schema.append(pa.field("weight", pa.float64())).append(pa.field("dup_count", pa.int64()))
+    at = 0
+    with pq.ParquetWriter(path, schema) as writer:
+        for piece in frame.source.take_batches(frame.train[selection.keep]):
+            m = piece.num_rows
+            writer.write_table(piece.append_column("weight", pa.array(weight[at:at + m], pa.float64()))
+                               .append_column("dup_count", pa.array(dup_count[at:at + m], pa.int64())), row_group_size=row_group_size)
+            at += m
+
+
 def _write_locked(frame, scores, selection, verdict, config, timings, parent, extra, files) -> Path:
     from .report_html import render_html
 
@@ -285,11 +298,7 @@ def _write_locked(frame, scores, selection, verdict, config, timings, parent, ex
         manifest = manifest_table(frame, scores, selection)
         counts = check_conservation(manifest, len(frame.row_id))
         pq.write_table(manifest, tmp / "manifest.parquet", row_group_size=config.execution.batch_rows)
-        kept_rows = frame.train[selection.keep]
-        kept = frame.source.take(pa.array(kept_rows)).append_column(
-            "weight", pa.array(selection.weight[selection.keep], pa.float64())).append_column(
-            "dup_count", pa.array(selection.dup_count[selection.keep], pa.int64()))
-        pq.write_table(kept, tmp / "kept.parquet", row_group_size=config.execution.batch_rows)
+        _write_kept(frame, selection, tmp / "kept.parquet", config.execution.batch_rows)
         models = tmp / "models"
         models.mkdir()
         for k, proxy in enumerate(scores.proxies):

@@ -431,6 +431,24 @@ class TableSource:
             table = table.append_column("row_id", self.row_id.take(indices))
         return table
 
+    @property
+    def schema(self) -> pa.Schema:
+        """The schema of :meth:`take`'s tables: the original columns, then ``row_id`` when derived."""
+        schema = self.dataset.schema
+        return schema if self.row_id is None else schema.append(pa.field("row_id", self.row_id.type))
+
+    def take_batches(self, rows: np.ndarray):
+        """The rows at ``rows`` (ascending positions in table order) as :meth:`take` gives them, in
+        tables of at most one batch each, read batch by batch rather than all at once."""
+        schema, start = self.dataset.schema, 0
+        for batch in self.batches():
+            lo, hi = np.searchsorted(rows, (start, start + batch.num_rows))
+            if hi > lo:
+                picked = pa.array(rows[lo:hi], pa.int64())
+                table = pa.Table.from_batches([batch]).take(pc.subtract(picked, start)).select(schema.names).cast(schema)
+                yield table if self.row_id is None else table.append_column("row_id", self.row_id.take(picked))
+            start += batch.num_rows
+
     def batches(self, columns: list[str] | None = None):
         """Record batches of ``columns`` (all original columns when None), in table order.
 
