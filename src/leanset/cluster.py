@@ -49,9 +49,9 @@ import pyarrow.parquet as pq
 
 from .config import SCORE_NAMES, Config, ExecutionConfig, ProxyConfig
 from .errors import ConfigError, InputError
-from .proxy import FittedProxy, _as_matrix, _two_column, binned_dataset, fit_proxy, gbdt_params, n_checkpoints
+from .proxy import FittedProxy, binary_logits, binned_dataset, fit_proxy, gbdt_params, n_checkpoints, proba_matrix
 from .scores import Dynamics, ResidualDynamics, Scores, aum_cutoff, margin, repeat_folds, residual_band, stability
-from .table import RowFrame, _encode
+from .table import RowFrame, encode_columns
 
 try:
     import dask.array as da
@@ -135,7 +135,7 @@ def read_partition(part: Partition, frame_spec: dict, y: np.ndarray, keep: np.nd
     if len(read) != len(y) or not np.array_equal(read, y):
         raise InputError(f"{part.path}: rows {part.start}..{part.start + part.rows - 1} differ from the table the load stage read; rerun so both stages read the same file")
     names, k = frame_spec["feature_names"], frame_spec["n_numeric"]
-    return _encode(table.take(pa.array(keep, pa.int64())).to_pandas(), names[:k], names[k:], frame_spec["categories"])
+    return encode_columns(table.take(pa.array(keep, pa.int64())).to_pandas(), names[:k], names[k:], frame_spec["categories"])
 
 
 def _take(X: np.ndarray, rows: np.ndarray) -> np.ndarray:
@@ -287,7 +287,7 @@ def _checkpoints(booster: lgb.Booster, X: np.ndarray, n_classes: int, T: int, ev
     z = np.zeros((len(X), n_classes) if n_classes > 2 else len(X))
     for t in range(T):
         z = z + booster.predict(X, raw_score=True, start_iteration=t * every, num_iteration=every)
-        yield _two_column(z) if n_classes else z
+        yield binary_logits(z) if n_classes else z
 
 
 def shard_scores(X: np.ndarray, y: np.ndarray, fold: np.ndarray, models: list[str], n_classes: int, T: int, every: int,
@@ -308,7 +308,7 @@ def shard_scores(X: np.ndarray, y: np.ndarray, fold: np.ndarray, models: list[st
                 dyn.update(t, fit_rows, z, y[fit_rows])
         if len(out_rows):
             pred = booster.predict(X[out_rows])
-            oof[out_rows] = _as_matrix(pred) if n_classes else pred
+            oof[out_rows] = proba_matrix(pred) if n_classes else pred
     out = dyn.result(np.arange(n))
     if n_classes:
         out["oof_loss"] = -np.log(np.clip(oof[np.arange(n), y], np.finfo(np.float64).eps, 1.0))

@@ -43,11 +43,12 @@ def softmax(logits: np.ndarray) -> np.ndarray:
     return z
 
 
-def _as_matrix(p: np.ndarray) -> np.ndarray:
+def proba_matrix(p: np.ndarray) -> np.ndarray:
+    """Binary probabilities p of the positive class as columns [1 - p, p]; multiclass unchanged."""
     return np.column_stack((1.0 - p, p)) if p.ndim == 1 else p
 
 
-def _two_column(z: np.ndarray) -> np.ndarray:
+def binary_logits(z: np.ndarray) -> np.ndarray:
     """Binary decision values z as logits [0, z]; multiclass values unchanged."""
     return np.column_stack((np.zeros_like(z), z)) if z.ndim == 1 else z
 
@@ -71,7 +72,7 @@ class FittedProxy:
     def predict_proba(self, X: np.ndarray) -> np.ndarray:
         """Class probabilities, shape (n, n_classes)."""
         if self.family == "gbdt":
-            return _as_matrix(self.model.predict(X))
+            return proba_matrix(self.model.predict(X))
         return softmax(_linear_logits(self.model, X))
 
     def to_text(self) -> str:
@@ -185,7 +186,7 @@ class _LogProba:
         return self.shape[0]
 
     def __getitem__(self, rows) -> np.ndarray:
-        z = np.maximum(_as_matrix(self._p[rows]), _EPS)
+        z = np.maximum(proba_matrix(self._p[rows]), _EPS)
         return np.log(z, out=z)
 
     def __array__(self, dtype=None, copy=None) -> np.ndarray:
@@ -193,7 +194,7 @@ class _LogProba:
 
 
 def _linear_logits(pipe, X: np.ndarray) -> np.ndarray:
-    return _two_column(pipe.decision_function(X))
+    return binary_logits(pipe.decision_function(X))
 
 
 def fit_linear(X, y, n_classes, categorical, config: ProxyConfig, seed: int, on_checkpoint: Checkpoint) -> FittedProxy:
@@ -215,7 +216,7 @@ def fit_linear(X, y, n_classes, categorical, config: ProxyConfig, seed: int, on_
     for t in range(1, config.epochs + 1):
         order = rng.permutation(len(y))
         sgd.partial_fit(Z[order], y[order], classes=classes)
-        on_checkpoint(t, _two_column(sgd.decision_function(Z)))
+        on_checkpoint(t, binary_logits(sgd.decision_function(Z)))
     return FittedProxy("linear", pipe)
 
 

@@ -94,7 +94,7 @@ class RowFrame:
         """The float32 feature matrix of a batch of original columns, with this run's category codes."""
         k = len(self.feature_names) - len(self.categorical)
         names = self.feature_names
-        return _encode(batch.select(names).to_pandas(), names[:k], names[k:], self.categories)
+        return encode_columns(batch.select(names).to_pandas(), names[:k], names[k:], self.categories)
 
     def feature_batches(self, train_only: bool = False):
         """Yield ``(start, X_batch)`` over all rows in table order: slices of ``X``, or batches read
@@ -381,7 +381,7 @@ def release_memory() -> None:
         pass
 
 
-def _encode(df: pd.DataFrame, numeric: list[str], categorical: list[str], categories: dict[str, list]) -> np.ndarray:
+def encode_columns(df: pd.DataFrame, numeric: list[str], categorical: list[str], categories: dict[str, list]) -> np.ndarray:
     """Float32 features of a frame of original columns: numbers as given, categories as codes (NaN for missing or unseen)."""
     X = np.empty((len(df), len(numeric) + len(categorical)), dtype=np.float32)
     for j, name in enumerate(numeric):
@@ -496,7 +496,7 @@ def load_table(config: Config) -> RowFrame:
     for batch in source.batches(used):
         df = batch.to_pandas()
         hashes.append(_row_hashes(df))
-        block = _encode(df, numeric, [], {})
+        block = encode_columns(df, numeric, [], {})
         cats = pd.DataFrame({name: df[name].astype("string") for name in categorical}, index=df.index)
         # same values, same hash: float32 numbers and category strings (one code per string)
         feature_hashes.append(_row_hashes(pd.concat([pd.DataFrame(block, index=df.index), cats], axis=1)))
@@ -520,7 +520,7 @@ def load_table(config: Config) -> RowFrame:
         del blocks
         if categorical:
             cats = pd.DataFrame({name: pd.concat(cat_cols[name], ignore_index=True) for name in categorical})
-            X[:, len(numeric):] = _encode(cats, [], categorical, categories)
+            X[:, len(numeric):] = encode_columns(cats, [], categorical, categories)
     if inp.id is None:
         ids = source.row_id = _derive_ids(content)
     else:
