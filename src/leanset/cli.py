@@ -33,15 +33,19 @@ def _fail(exc: LeansetError) -> None:
     raise typer.Exit(2)
 
 
+_CONFIG = typer.Argument(..., help="YAML config file.")
+_SEED = typer.Option(None, help="Override seed.")
+_STORE_OVERRIDE = typer.Option(None, help="Override store (the folder that receives runs/).")
+_WAIT = typer.Option(0.0, help="Seconds to wait for another run holding the store's lock.")
+_VERBOSE = typer.Option(False, "--verbose", help="Show Prefect's own log lines.")
+
+
 @app.command()
 def run(
-    config: Path = typer.Argument(..., help="YAML config file."),
+    config: Path = _CONFIG,
     fraction: Optional[str] = typer.Option(None, help="Override selection.fraction: a number in (0, 1], or auto."),
     strategy: Optional[str] = typer.Option(None, help="Override selection.strategy: stratified, hardest, easiest or random."),
-    seed: Optional[int] = typer.Option(None, help="Override seed."),
-    store: Optional[Path] = typer.Option(None, help="Override store (the folder that receives runs/)."),
-    wait: float = typer.Option(0.0, help="Seconds to wait for another run holding the store's lock."),
-    verbose: bool = typer.Option(False, "--verbose", help="Show Prefect's own log lines."),
+    seed: Optional[int] = _SEED, store: Optional[Path] = _STORE_OVERRIDE, wait: float = _WAIT, verbose: bool = _VERBOSE,
 ) -> None:
     """Score, prune and verify the configured table; write a run directory and print a summary."""
     overrides = {"selection.fraction": fraction, "selection.strategy": strategy, "seed": seed,
@@ -51,12 +55,9 @@ def run(
 
 @app.command()
 def frontier(
-    config: Path = typer.Argument(..., help="YAML config file."),
+    config: Path = _CONFIG,
     fractions: Optional[str] = typer.Option(None, help="Override selection.grid: comma-separated fractions, e.g. 0.05,0.1,0.3."),
-    seed: Optional[int] = typer.Option(None, help="Override seed."),
-    store: Optional[Path] = typer.Option(None, help="Override store (the folder that receives runs/)."),
-    wait: float = typer.Option(0.0, help="Seconds to wait for another run holding the store's lock."),
-    verbose: bool = typer.Option(False, "--verbose", help="Show Prefect's own log lines."),
+    seed: Optional[int] = _SEED, store: Optional[Path] = _STORE_OVERRIDE, wait: float = _WAIT, verbose: bool = _VERBOSE,
 ) -> None:
     """A run plus the frontier: the target's holdout metric for every grid fraction and strategy, and random."""
     grid = None if fractions is None else [part.strip() for part in fractions.split(",") if part.strip()]
@@ -180,6 +181,16 @@ def _emit(data, as_json: bool, table) -> None:
         Console().print(table)
 
 
+def _fields(title: str):
+    """A two-column table of named fields: the name in bold, then its value."""
+    from rich.table import Table
+
+    table = Table(title=title, show_header=False, title_justify="left")
+    table.add_column(style="bold")
+    table.add_column()
+    return table
+
+
 def _fmt(value, digits: int = 4) -> str:
     if value is None:
         return "–"
@@ -209,13 +220,9 @@ def why_command(row_id: str = typer.Argument(..., help="The row id (as in the ma
                 run: Optional[str] = typer.Option(None, "--run", help="Run id or unique prefix; default: the latest run holding the row."),
                 store: Path = _STORE, json_: bool = _JSON) -> None:
     """Why a row was kept or dropped: decision, reason, scores and their class percentiles, thresholds."""
-    from rich.table import Table
-
     w = _audit("why", store, row_id, run)
     t = w["thresholds"]
-    table = Table(title=f"row {row_id} in run {w['run_id']}", show_header=False, title_justify="left")
-    table.add_column(style="bold")
-    table.add_column()
+    table = _fields(f"row {row_id} in run {w['run_id']}")
     table.add_row("decision", f"{w['decision']} ({w['reason']})")
     table.add_row("label · split", f"{w['label']} · {w['split']}")
     table.add_row("stratum · weight", f"{_fmt(w['stratum'])} · {_fmt(w['weight'])}")
@@ -259,9 +266,7 @@ def diff_command(run_a: str = typer.Argument(..., help="The earlier run (id or u
 
     d = _audit("diff", store, run_a, run_b, limit, out)
     c = d["counts"]
-    head = Table(title=f"{d['run_a']} → {d['run_b']}", show_header=False, title_justify="left")
-    head.add_column(style="bold")
-    head.add_column()
+    head = _fields(f"{d['run_a']} → {d['run_b']}")
     head.add_row("rows", f"{c['rows_a']:,} → {c['rows_b']:,} ({c['both']:,} in both, {c['only_b']:,} new, {c['only_a']:,} gone)")
     head.add_row("decision changed", f"{c['changed']:,} of {c['both']:,} rows in both ({c['churn_fraction']:.2%})")
     trans = Table(title="changed rows by reason", title_justify="left")
@@ -284,14 +289,10 @@ def restore_command(run: str = typer.Argument(..., help="Run id or unique prefix
                     ids_only: bool = typer.Option(False, "--ids-only", help="Write only the manifest columns (row_id, label, decision, reason, weight); do not read the input table."),
                     store: Path = _STORE, json_: bool = _JSON) -> None:
     """Write the kept rows plus the dropped rows of the given reasons, with re-balanced weights."""
-    from rich.table import Table
-
     if out is None:
         out = Path(f"restore-{run}.parquet")
     r = _audit("restore", store, run, reason, out, rows=not ids_only)
-    table = Table(title=f"restore from run {r['run_id']}", show_header=False, title_justify="left")
-    table.add_column(style="bold")
-    table.add_column()
+    table = _fields(f"restore from run {r['run_id']}")
     table.add_row("rows written", f"{r['rows']:,} = {r['kept']:,} kept + {r['restored']:,} restored ({', '.join(r['reasons'])})")
     table.add_row("written to", r["out"])
     _emit(r, json_, table)
