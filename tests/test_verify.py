@@ -25,7 +25,7 @@ from leanset.config import SelectionConfig, TargetConfig, VerifyConfig
 from leanset.errors import ConfigError
 from leanset.select import select
 from leanset.verify import (
-    FittedTarget, fit_target, mcnemar_exact, metric_value, paired_bootstrap, recall_drop, verify,
+    FittedTarget, fit_target, mcnemar_exact, metric_value, paired_bootstrap, recall_drop, resampled_metric, verify,
 )
 
 # The module itself, for monkeypatching: the package re-exports the function ``verify`` under the
@@ -162,6 +162,23 @@ def test_paired_bootstrap_identical_models_and_stratified_roc_auc():
     q = np.column_stack((1 - q1, q1))  # perfect ranking
     lo, hi = paired_bootstrap(y, q, p, "roc_auc", 200, 0.95, np.random.default_rng(0))
     assert 0 <= lo <= hi
+
+
+def test_resampled_roc_auc_equals_sklearn_on_every_resample():
+    # The binary fast path (scores sorted once, Mann-Whitney from multiplicities) against
+    # sklearn.metrics.roc_auc_score on the resampled rows: breast cancer, a logistic regression's
+    # probabilities rounded to 2 decimals so that many scores tie.
+    X, y = load_breast_cancer(return_X_y=True)
+    X_tr, X_te, y_tr, y_te = train_test_split(X, y, test_size=0.5, random_state=0, stratify=y)
+    p1 = np.round(LogisticRegression(max_iter=5000).fit(X_tr, y_tr).predict_proba(X_te)[:, 1], 2)
+    proba = np.column_stack((1 - p1, p1))
+    fast = resampled_metric("roc_auc", y_te, proba)
+    rng = np.random.default_rng(3)
+    for _ in range(50):
+        i = rng.integers(0, len(y_te), len(y_te))
+        assert fast(i) == pytest.approx(metrics.roc_auc_score(y_te[i], p1[i]), abs=1e-12)
+    assert np.isnan(fast(np.flatnonzero(y_te == 1)))  # one class only: undefined, as sklearn refuses it
+    assert resampled_metric("accuracy", y_te, proba)(i) == metrics.accuracy_score(y_te[i], proba[i].argmax(axis=1))
 
 
 # ---------------------------------------------------------------- McNemar vs scipy.stats.binomtest

@@ -69,6 +69,33 @@ def metric_value(name: str, y: np.ndarray, proba: np.ndarray) -> float:
     return float(metrics.f1_score(y, pred, average="macro", labels=np.unique(y), zero_division=0))
 
 
+def resampled_metric(name: str, y: np.ndarray, proba: np.ndarray):
+    """``f(i)``: :func:`metric_value` on the bootstrap resample ``i`` (row indices); NaN where undefined.
+
+    Binary ROC AUC takes a fast path: the scores are sorted once, and each resample's AUC is the
+    Mann–Whitney statistic with ties counted half, from the rows' multiplicities in the resample;
+    the same value as ``sklearn.metrics.roc_auc_score`` on ``(y[i], proba[i, 1])``, in O(n) a resample.
+    """
+    if name != "roc_auc" or proba.ndim != 2 or proba.shape[1] != 2:
+        return lambda i: _safe_metric(name, y[i], proba[i])
+    order = np.argsort(proba[:, 1], kind="stable")
+    ranked = proba[order, 1]
+    positive = y[order] == 1
+    tie = np.concatenate(([0], np.cumsum(ranked[1:] != ranked[:-1])))  # tie group of each sorted row
+    groups = int(tie[-1]) + 1 if len(tie) else 0
+
+    def auc(i: np.ndarray) -> float:
+        w = np.bincount(i, minlength=len(y))[order].astype(np.float64)
+        pos = np.bincount(tie, weights=np.where(positive, w, 0.0), minlength=groups)
+        neg = np.bincount(tie, weights=np.where(positive, 0.0, w), minlength=groups)
+        n_pos, n_neg = pos.sum(), neg.sum()
+        if n_pos == 0 or n_neg == 0:
+            return float("nan")
+        below = np.cumsum(neg) - neg  # negatives scored strictly lower than each tie group
+        return float((pos * (below + 0.5 * neg)).sum() / (n_pos * n_neg))
+    return auc
+
+
 def _resamples(y: np.ndarray, n_resamples: int, rng: np.random.Generator, stratify: bool):
     """Bootstrap row indices; stratified by class, each class keeps its count in every resample."""
     stratify = stratify and y.dtype.kind != "f"  # float labels are regression values, not classes
@@ -89,8 +116,8 @@ def paired_bootstrap(y: np.ndarray, proba_a: np.ndarray, proba_b: np.ndarray, na
     With ``stratify`` every resample keeps each class's count, so ``roc_auc`` stays defined.
     """
     sign = ORIENTATION[name]
-    deltas = np.array([sign * (metric_value(name, y[i], proba_a[i]) - metric_value(name, y[i], proba_b[i]))
-                       for i in _resamples(y, n_resamples, rng, stratify)])
+    metric_a, metric_b = resampled_metric(name, y, proba_a), resampled_metric(name, y, proba_b)
+    deltas = np.array([sign * (metric_a(i) - metric_b(i)) for i in _resamples(y, n_resamples, rng, stratify)])
     lo, hi = _interval(deltas, confidence)
     return float(lo), float(hi)
 
@@ -277,8 +304,8 @@ def metric_interval(y: np.ndarray, probas: list[np.ndarray], name: str, n_resamp
     Each bootstrap resample of the holdout is scored with one of ``probas`` picked at random, so for
     repeated random subsets the interval carries both the holdout's noise and the luck of the draw.
     """
-    values = np.array([_safe_metric(name, y[i], probas[rng.integers(len(probas))][i])
-                       for i in _resamples(y, n_resamples, rng, stratify=True)])
+    per_model = [resampled_metric(name, y, p) for p in probas]
+    values = np.array([per_model[rng.integers(len(probas))](i) for i in _resamples(y, n_resamples, rng, stratify=True)])
     lo, hi = _interval(values[np.isfinite(values)], confidence)
     return float(lo), float(hi)
 
