@@ -117,18 +117,15 @@ class RowFrame:
             yield start, self.encode(batch)
             start += batch.num_rows
 
-    def features(self, *rows: np.ndarray):
-        """The float32 features of each of ``rows`` (ascending positions in table order), gathered in
-        one pass over the batches when ``X`` is not in memory; one array, or a tuple for several."""
+    def features(self, rows: np.ndarray) -> np.ndarray:
+        """The float32 features of ``rows`` (ascending positions in table order), gathered in one
+        pass over the batches when ``X`` is not in memory."""
         if self.X is not None:
-            out = tuple(self.X[r] for r in rows)
-        else:
-            out = tuple(np.empty((len(r), len(self.feature_names)), np.float32) for r in rows)
-            for start, X in self.feature_batches():
-                for r, o in zip(rows, out):
-                    lo, hi = np.searchsorted(r, (start, start + len(X)))
-                    o[lo:hi] = X[r[lo:hi] - start]
-        return out[0] if len(out) == 1 else out
+            return self.X[rows]
+        out = np.empty((len(rows), len(self.feature_names)), np.float32)
+        for lo, X in RowView(self, rows).batches():
+            out[lo:lo + len(X)] = X
+        return out
 
     def feature_rows(self, rows: np.ndarray):
         """The float32 features of ``rows`` (ascending positions in table order): an array when ``X``
