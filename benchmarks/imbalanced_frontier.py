@@ -6,6 +6,7 @@ negatives far from it and 10 % of them overlapping it), a config that verifies R
 default strategy and for ``random``.
 
     python benchmarks/imbalanced_frontier.py --out DIR [--rows 1000000] [--positives 0.01]
+        [--fractions 0.005,0.01,0.05]
 """
 
 from __future__ import annotations
@@ -42,6 +43,7 @@ def main() -> None:
     ap.add_argument("--out", type=Path, required=True, help="folder for the table, config and store")
     ap.add_argument("--rows", type=int, default=1_000_000)
     ap.add_argument("--positives", type=float, default=0.01)
+    ap.add_argument("--fractions", help="grid of fractions, comma-separated (default: selection.grid's)")
     args = ap.parse_args()
     args.out.mkdir(parents=True, exist_ok=True)
     table = args.out / "events.parquet"
@@ -54,7 +56,8 @@ verify: {{metric: roc_auc, tolerance: 0.005}}
 store: store
 seed: 0
 """)
-    subprocess.run(["leanset", "frontier", str(config)], check=True)
+    grid = ["--fractions", args.fractions] if args.fractions else []
+    subprocess.run(["leanset", "frontier", str(config), *grid], check=True)
 
 
 if __name__ == "__main__":

@@ -202,8 +202,9 @@ def threshold_samples(X, y: np.ndarray, n_classes: int, categorical: list[int], 
                       seed: int) -> tuple[np.ndarray, dict]:
     """Suspected label errors by the AUM threshold-sample procedure (Pleiss et al., NeurIPS 2020).
 
-    Two extra proxy fits on all rows. In each, a seeded random slice of n / (k + 1) rows is
-    relabelled to a fake class k + 1, so those rows are mislabelled by construction; the
+    Two extra proxy fits on all rows. In each, a seeded random slice of n / (k + 1) rows (the
+    paper's size), at most ``threshold_share`` × n, is relabelled to a fake class k + 1, so those
+    rows are mislabelled by construction; the
     ``threshold_percentile`` of their AUM is the cut-off. The slices of the two fits are disjoint,
     so every row is judged in at least one fit as a row with its own label; its gap to the cut-off
     is averaged over the fits that judged it, and a negative gap marks it suspect.
@@ -230,7 +231,7 @@ def aum_cutoff(y: np.ndarray, n_classes: int, config: ProxyConfig, seed: int,
     n = len(y)
     rng = np.random.default_rng([seed, 0xA0C])
     order = rng.permutation(n)
-    m = n // (n_classes + 1)
+    m = max(1, min(n // (n_classes + 1), int(n * config.threshold_share)))
     gap, judged, cutoffs = np.zeros(n), np.zeros(n, np.int64), []
     for j in range(2):
         fake = order[j * m:(j + 1) * m]
