@@ -382,3 +382,22 @@ def test_stratified_10pct_digits_not_worse_than_random(tmp_path: Path):
     # Over config seeds 0-5 stratified (aum) gave 0.802-0.875 (mean 0.836) against random means of
     # 0.798-0.845 (overall 0.821) and minima of 0.727-0.836: on par with random, not clearly above.
     assert acc_kept >= min(acc_random), (acc_kept, sorted(acc_random))
+
+
+def test_select_frame_ranks_by_the_given_selections_score():
+    # A selection passed in (as the frontier and fraction search do) ranks by its own score.
+    from types import SimpleNamespace
+
+    from leanset.config import Config
+    from leanset.select import select_frame
+
+    n = 200
+    frame = SimpleNamespace(train=np.arange(n), groups=np.zeros(n, np.int32), segments=None,
+                            feature_hash=np.arange(n, dtype=np.uint64))
+    by_score = {"aum": np.arange(n, dtype=float), "el2n": np.arange(n, dtype=float)[::-1]}
+    scores = SimpleNamespace(difficulty=by_score.__getitem__, suspects=lambda: None)
+    config = Config.model_validate({"input": {"path": "t.parquet", "label": "y"},
+                                    "selection": {"strategy": "hardest", "fraction": 0.1, "class_floor": 0}})
+    assert set(np.flatnonzero(select_frame(frame, scores, config).keep)) == set(range(180, 200))
+    el2n = config.selection.model_copy(update={"score": "el2n"})
+    assert set(np.flatnonzero(select_frame(frame, scores, config, el2n).keep)) == set(range(20))

@@ -325,9 +325,8 @@ def select_frame(frame, scores, config: Config, selection: SelectionConfig | Non
     """The select stage on a loaded ``RowFrame`` and its ``Scores``: difficulty by ``selection.score``,
     quotas over classes (label bins on a regression table) and segments, duplicates by feature
     hash, suspected label errors; ``selection`` replaces ``config.selection`` when given."""
-    train = frame.train
-    return select_rows(scores.difficulty(config.selection.score), frame.groups[train], selection or config.selection,
-                       config.seed, suspect=scores.suspects(),
+    train, selection = frame.train, selection or config.selection
+    return select_rows(scores.difficulty(selection.score), frame.groups[train], selection, config.seed, suspect=scores.suspects(),
                        segments=None if frame.segments is None else frame.segments[train], X=frame.feature_hash[train])
 
 
