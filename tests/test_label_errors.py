@@ -142,23 +142,6 @@ def test_suspects_are_dropped_with_their_reason_and_the_budget_holds():
     assert "drop:suspect_label" not in set(off.reason) and off.keep[suspect].any()
 
 
-def test_class_floor_comes_before_dropping_suspects():
-    # A class that would fall below min(n_c, class_floor) without its suspects keeps them; a larger
-    # class loses its suspects, and the budget still holds (a leanset rule, no outside source).
-    rng = np.random.default_rng(2)
-    y = np.repeat([0, 1], [400, 60])
-    suspect = np.zeros(len(y), bool)
-    suspect[rng.choice(400, 40, replace=False)] = True
-    suspect[400 + rng.choice(60, 15, replace=False)] = True
-    config = SelectionConfig(fraction=0.5, class_floor=50, drop_suspect_labels=True, quotas="proportional")
-    sel = select_rows(rng.random(len(y)), y, config, 0, suspect=suspect)
-    assert set(sel.reason[suspect & (y == 0)]) == {"drop:suspect_label"}
-    assert "drop:suspect_label" not in set(sel.reason[y == 1])
-    assert sel.keep[y == 1].sum() == 50  # its floor, met with 45 clean rows and 5 of its suspects at most
-    assert sel.keep.sum() == 230
-    assert sel.info["suspect_dropped"] == 40 and sel.info["suspect_spared"] == 15
-
-
 def test_run_writes_suspect_label_and_drops_suspects(tmp_path, prefect_api):
     import json
 

@@ -294,9 +294,8 @@ def select_rows(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, 
     """:func:`select`, after setting aside suspected label errors when ``drop_suspect_labels`` is on.
 
     Suspects are dropped with ``drop:suspect_label``; the others are selected with the fraction
-    raised so the budget stays ``round(fraction * n)`` of all ``n`` rows. The class floor comes
-    first: a class whose other rows are fewer than ``min(n_c, class_floor)`` keeps its suspects in
-    the selection. ``per_row`` holds the optional per-row arguments of :func:`select` (``segments``, ``X``).
+    raised so the budget stays ``round(fraction * n)`` of all ``n`` rows. ``per_row`` holds the
+    optional per-row arguments of :func:`select` (``segments``, ``X``).
 
     Parameters
     ----------
@@ -305,9 +304,7 @@ def select_rows(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, 
     """
     if suspect is None or not config.drop_suspect_labels or not suspect.any():
         return select(difficulty, y, config, seed, **per_row)
-    counts = np.bincount(y)
-    spared = np.bincount(y[~suspect], minlength=len(counts)) < np.minimum(counts, config.class_floor)
-    ok = ~suspect | spared[y]
+    ok = ~suspect
     n = len(y)
     fraction = min(1.0, config.fraction * n / max(int(ok.sum()), 1))
     sub = select(difficulty[ok], y[ok], config.model_copy(update={"fraction": fraction}), seed,
@@ -320,7 +317,7 @@ def select_rows(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, 
             fields[name] = full
         else:
             fields[name] = value
-    fields["info"] = {**sub.info, "suspect_dropped": int(n - ok.sum()), "suspect_spared": int((suspect & ok).sum())}
+    fields["info"] = {**sub.info, "suspect_dropped": int(suspect.sum())}
     return Selection(**fields)
 
 
