@@ -69,7 +69,7 @@ def test_demo_config_end_to_end(prefect_api, tmp_path):
     assert manifest["row_id"].is_unique and set(manifest["row_id"]) == set(source["inspection_id"])
     c = run["counts"]
     assert c["kept"] + c["dropped"] + c["holdout"] == run["input"]["rows"]
-    assert c["kept"] == round(0.5 * c["train"])
+    assert c["kept"] == round(0.3 * c["train"])  # demo.yaml: selection.fraction 0.3
     assert set(manifest["reason"]) <= REASON_CODES
     assert (manifest["decision"] == "keep").sum() == len(kept) == c["kept"]
     assert set(kept["inspection_id"]) == set(manifest.loc[manifest["decision"] == "keep", "row_id"])
