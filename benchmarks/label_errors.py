@@ -16,34 +16,25 @@ import tempfile
 from pathlib import Path
 
 import numpy as np
-import pandas as pd
-from sklearn.datasets import load_breast_cancer, load_digits, load_wine
 from sklearn.metrics import precision_score, recall_score
 
 from leanset.config import Config
+from leanset.datasets import flipped_table
 from leanset.scores import score
 from leanset.table import load_table
 
-LOADERS = {"digits": load_digits, "wine": load_wine, "breast_cancer": load_breast_cancer}
+DATASETS = ("digits", "wine", "breast_cancer")
 
 
 def flipped_run(name: str, rate: float, seed: int, proxy: dict, tmp: Path) -> tuple[float, float]:
     """Precision and recall of the cut-off on ``name`` with ``rate`` of its labels flipped."""
-    X, y = LOADERS[name](return_X_y=True)
-    rng = np.random.default_rng(seed)
-    n, k = len(y), int(y.max()) + 1
-    flip = rng.choice(n, size=int(n * rate), replace=False)
-    noisy = y.copy()
-    noisy[flip] = (y[flip] + rng.integers(1, k, size=flip.size)) % k  # always another class
-    d = pd.DataFrame(X.astype(np.float32), columns=[f"f{i}" for i in range(X.shape[1])])
-    d.insert(0, "rid", [f"r{i}" for i in range(n)])
-    d["label"] = noisy
+    d, flip = flipped_table(name, rate, seed)
     path = tmp / f"{name}_{rate}_{seed}.parquet"
     d.to_parquet(path, index=False)
     cfg = Config.model_validate({"input": {"path": str(path), "label": "label", "id": "rid"},
                                  "proxy": {"params": {"num_threads": 1}, **proxy}, "seed": 0})
     frame = load_table(cfg)
-    flipped = np.isin(np.arange(n), flip)[frame.train]
+    flipped = np.isin(np.arange(len(d)), flip)[frame.train]
     suspect = score(frame, cfg).table["suspect_label"].to_numpy(bool)
     return precision_score(flipped, suspect, zero_division=0), recall_score(flipped, suspect)
 
@@ -59,7 +50,7 @@ def main() -> None:
              if v is not None}
     print("dataset        flipped  seed       precision  recall")
     with tempfile.TemporaryDirectory() as tmp:
-        for name in LOADERS:
+        for name in DATASETS:
             for rate in args.rates:
                 for seed in args.seeds:
                     p, r = flipped_run(name, rate, seed, proxy, Path(tmp))

@@ -5,6 +5,7 @@ from __future__ import annotations
 import os
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 from sklearn import datasets
 
@@ -38,3 +39,22 @@ def export_bundled(name: str, out: str | Path) -> Path:
     df.to_parquet(tmp, index=False)
     os.replace(tmp, out)
     return out
+
+
+def flipped_table(name: str, rate: float, seed: int) -> tuple[pd.DataFrame, np.ndarray]:
+    """A bundled classification dataset with a ``rate`` share of its labels moved, at random, each
+    to another class drawn uniformly: known label errors for checking the suspect cut-off.
+
+    Returns the table (row id ``rid``, float32 features ``f0``, ``f1``, …, integer ``label``) and
+    the positions of the flipped rows.
+    """
+    X, y = BUNDLED[name](return_X_y=True)
+    rng = np.random.default_rng(seed)
+    n, k = len(y), int(y.max()) + 1
+    flip = rng.choice(n, size=int(n * rate), replace=False)
+    noisy = y.copy()
+    noisy[flip] = (y[flip] + rng.integers(1, k, size=flip.size)) % k  # always another class
+    table = pd.DataFrame(X.astype(np.float32), columns=[f"f{i}" for i in range(X.shape[1])])
+    table.insert(0, "rid", [f"r{i}" for i in range(n)])
+    table["label"] = noisy
+    return table, flip
