@@ -112,3 +112,18 @@ def test_verdict_and_churn_sections_carry_the_run_figures(runs):
 def test_run_summary_points_at_the_report(runs):
     dirs, result = runs
     assert str(dirs[0] / "report.html") in result.output
+
+
+def test_summary_reports_calibration_beside_the_metric(runs):
+    from rich.console import Console
+
+    from leanset.report import read_run, summary
+
+    dirs, _ = runs
+    run = read_run(dirs[0])
+    cal = run["verdict"]["calibration"]
+    console = Console(width=300, record=True)
+    console.print(summary(run, dirs[0]))
+    text = console.export_text()
+    name = "Brier score" if len(run["verdict"]["per_class_recall"]) == 2 else "log loss"
+    assert f"{name} (lower is better): full {cal['full']:.4f} · kept {cal['kept']:.4f} · random {cal['random']:.4f}" in text

@@ -38,6 +38,10 @@ def summary(run: dict[str, Any], run_dir: str | Path) -> Table:
                   f"{run['config']['verify']['confidence']:.0%} CI [{lo:+.4f}, {hi:+.4f}], tolerance {v['tolerance']}")
     table.add_row(v["metric"], f"full {v['full']:.4f} · kept {v['kept']:.4f} · random same size {v['random']:.4f}")
     table.add_row("class recall", " · ".join(f"{name} {r['full']:.2f}→{r['kept']:.2f}" for name, r in v["per_class_recall"].items()))
+    if v.get("calibration"):
+        cal, name = v["calibration"], "Brier score" if len(v["per_class_recall"]) == 2 else "log loss"
+        table.add_row("calibration", f"{name} (lower is better): full {cal['full']:.4f} · kept {cal['kept']:.4f} · "
+                      f"random {cal['random']:.4f}")
     if v["failed_classes"]:
         table.add_row("class guard", "recall dropped too far for: " + ", ".join(v["failed_classes"]))
     if "search" in run:
