@@ -50,7 +50,7 @@ import pyarrow.parquet as pq
 from .config import SCORE_NAMES, Config, ExecutionConfig, ProxyConfig
 from .errors import ConfigError, InputError
 from .proxy import FittedProxy, binary_logits, binned_dataset, fit_proxy, gbdt_params, n_checkpoints, proba_matrix
-from .scores import Dynamics, ResidualDynamics, Scores, aum_cutoff, margin, repeat_folds, residual_band, stability
+from .scores import Dynamics, ResidualDynamics, Scores, aum_cutoff, margin, repeat_folds, residual_band, stability, threshold_config
 from .table import RowFrame, encode_columns
 
 try:
@@ -271,14 +271,17 @@ class Fitter:
         # the per-row arrays only: workers read the features themselves
         self.frame = shards.broadcast(replace(frame, X=None)) if self.whole else None
 
-    def fit(self, jobs: list[tuple[np.ndarray, np.ndarray, int, int]]) -> list[str]:
+    def fit(self, jobs: list[tuple[np.ndarray, np.ndarray, int, int]], proxy: ProxyConfig | None = None) -> list[str]:
         """Model texts of one fit per ``(rows, labels, n_classes, seed)`` job: ``rows`` (bool, training
-        order) selects the rows and ``labels`` holds every training row's label."""
+        order) selects the rows and ``labels`` holds every training row's label. ``proxy`` replaces
+        the config's proxy settings."""
+        proxy = proxy or self.config.proxy
         if not self.whole:
-            return [fit_booster(self.shards, rows, labels, k, self.categorical, self.config.proxy, seed).model_to_string()
+            return [fit_booster(self.shards, rows, labels, k, self.categorical, proxy, seed).model_to_string()
                     for rows, labels, k, seed in jobs]
+        config = self.config.model_copy(update={"proxy": proxy})
         futures = [self.shards.client.submit(fit_whole, self.frame, None if rows.all() else np.flatnonzero(rows), labels[rows],
-                                             k, self.config, seed, pure=False) for rows, labels, k, seed in jobs]
+                                             k, config, seed, pure=False) for rows, labels, k, seed in jobs]
         return self.shards.client.gather(futures)
 
 
@@ -344,11 +347,12 @@ def _cross_fit(fitter: Fitter, y, fold, n_classes, pc: ProxyConfig, seeds) -> tu
 
 def threshold_samples(fitter: Fitter, y: np.ndarray, n_classes: int, config: ProxyConfig, seed: int) -> tuple[np.ndarray, dict]:
     """:func:`leanset.scores.threshold_samples` with the cluster's fits: same slices, seeds, cut-offs and verdicts."""
+    config = threshold_config(config)
     T, every = n_checkpoints(config), config.checkpoint_every
     shards = fitter.shards
 
     def fit_aum(labels: np.ndarray, k: int, fit_seed: int) -> np.ndarray:
-        [text] = fitter.fit([(np.ones(len(y), bool), labels, k, fit_seed)])
+        [text] = fitter.fit([(np.ones(len(y), bool), labels, k, fit_seed)], proxy=config)
         return np.concatenate(shards.map(shard_aum, labels, model=shards.broadcast(text), T=T, every=every))
     return aum_cutoff(y, n_classes, config, seed, fit_aum)
 

@@ -56,6 +56,7 @@ class ProxyConfig(_Section):
     threshold_samples: bool = True
     threshold_percentile: float = Field(90.0, gt=0, lt=100)
     threshold_share: float = Field(0.1, gt=0, le=0.5)
+    threshold_rounds: int | None = Field(None, ge=2)
     agreement_rows: int = Field(2000, ge=0)
     agreement_floor: float = Field(0.3, ge=-1, le=1)
 

@@ -215,6 +215,7 @@ def threshold_samples(X, y: np.ndarray, n_classes: int, categorical: list[int], 
     info : dict
         The cut-off of each fit and the number of suspects.
     """
+    config = threshold_config(config)
     T, rows = n_checkpoints(config), np.arange(len(y))
 
     def fit_aum(labels: np.ndarray, k: int, fit_seed: int) -> np.ndarray:
@@ -222,6 +223,12 @@ def threshold_samples(X, y: np.ndarray, n_classes: int, categorical: list[int], 
         fit_proxy(X, labels, k, categorical, config, fit_seed, lambda t, z: add(rows, z, labels))
         return total / T
     return aum_cutoff(y, n_classes, config, seed, fit_aum)
+
+
+def threshold_config(config: ProxyConfig) -> ProxyConfig:
+    """The proxy settings of the threshold-sample passes: ``threshold_rounds`` boosting rounds,
+    by default half of ``rounds`` (the paper reads AUM before the network memorises its noise)."""
+    return config.model_copy(update={"rounds": config.threshold_rounds or max(config.checkpoint_every, config.rounds // 2)})
 
 
 def aum_cutoff(y: np.ndarray, n_classes: int, config: ProxyConfig, seed: int,
