@@ -6,7 +6,7 @@ stage runs (one LightGBM thread) and its ``suspect_label`` flags are compared wi
 (``sklearn.metrics.precision_score`` / ``recall_score``). Figures, not tests.
 
     python benchmarks/label_errors.py [--rates 0.05 0.1 0.2] [--seeds 20240601 7 11]
-        [--share 0.1] [--percentile 90]
+        [--share 0.1] [--percentile 90] [--rounds 30]
 """
 
 from __future__ import annotations
@@ -45,9 +45,10 @@ def main() -> None:
     ap.add_argument("--seeds", type=int, nargs="+", default=[20240601, 7, 11])
     ap.add_argument("--share", type=float, help="proxy.threshold_share (default: the config's)")
     ap.add_argument("--percentile", type=float, help="proxy.threshold_percentile (default: the config's)")
+    ap.add_argument("--rounds", type=int, help="proxy.threshold_rounds (default: half of proxy.rounds)")
     args = ap.parse_args()
-    proxy = {key: v for key, v in (("threshold_share", args.share), ("threshold_percentile", args.percentile))
-             if v is not None}
+    proxy = {key: v for key, v in (("threshold_share", args.share), ("threshold_percentile", args.percentile),
+                                   ("threshold_rounds", args.rounds)) if v is not None}
     print("dataset        flipped  seed       precision  recall")
     with tempfile.TemporaryDirectory() as tmp:
         for name in DATASETS:

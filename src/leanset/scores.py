@@ -202,9 +202,9 @@ def threshold_samples(X, y: np.ndarray, n_classes: int, categorical: list[int], 
                       seed: int) -> tuple[np.ndarray, dict]:
     """Suspected label errors by the AUM threshold-sample procedure (Pleiss et al., NeurIPS 2020).
 
-    Two extra proxy fits on all rows. In each, a seeded random slice of n / (k + 1) rows (the
-    paper's size), at most ``threshold_share`` × n, is relabelled to a fake class k + 1, so those
-    rows are mislabelled by construction; the
+    Two extra proxy fits on all rows, with the rounds of :func:`threshold_config`. In each, a
+    seeded random slice of n / (k + 1) rows (the paper's size), at most ``threshold_share`` × n, is
+    relabelled to a fake class k + 1, so those rows are mislabelled by construction; the
     ``threshold_percentile`` of their AUM is the cut-off. The slices of the two fits are disjoint,
     so every row is judged in at least one fit as a row with its own label; its gap to the cut-off
     is averaged over the fits that judged it, and a negative gap marks it suspect.
