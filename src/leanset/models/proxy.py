@@ -23,8 +23,8 @@ from sklearn.linear_model import SGDClassifier, SGDRegressor
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import OneHotEncoder, StandardScaler
 
-from .config import ProxyConfig
-from .table import release_memory
+from ..config import ProxyConfig
+from ..load.table import release_memory
 
 Checkpoint = Callable[[int, np.ndarray], None]
 _EPS = 1e-300

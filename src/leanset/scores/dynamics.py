@@ -34,11 +34,11 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from .config import Config, ProxyConfig, SCORE_NAMES
-from .errors import ConfigError
-from .proxy import FittedProxy, binned_dataset, fit_proxy, n_checkpoints, softmax
-from .table import RowFrame, release_memory
-from .verify import fit_target
+from ..config import Config, ProxyConfig, SCORE_NAMES
+from ..errors import ConfigError
+from ..models.proxy import FittedProxy, binned_dataset, fit_proxy, n_checkpoints, softmax
+from ..load.table import RowFrame, release_memory
+from ..models.target import fit_target
 
 CHUNK = 65_536
 #: Sign that turns each score into a difficulty (higher = harder).

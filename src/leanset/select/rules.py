@@ -26,7 +26,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 import pandas as pd
 
-from .config import Config, SelectionConfig
+from ..config import Config, SelectionConfig
 
 REASONS = {
     "keep:stratum": "kept to fill its class's budget evenly across difficulty strata (stratified)",

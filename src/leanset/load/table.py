@@ -19,8 +19,8 @@ import pyarrow.csv as pacsv
 import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
-from .config import REGRESSION_METRICS, Config
-from .errors import ConfigError, InputError
+from ..config import REGRESSION_METRICS, Config
+from ..errors import ConfigError, InputError
 
 #: Columns leanset adds to its outputs; an input column of the same name would be shadowed.
 RESERVED = ("weight",)
