@@ -15,7 +15,8 @@ import pandas as pd
 import pytest
 
 from leanset.config import SelectionConfig
-from leanset.select.rules import class_percentile, select, stabilise
+from leanset.difficulty import class_percentile
+from leanset.select.rules import select, stabilise
 from leanset.store.publish import store_lock
 from store_helpers import assert_conserved, cli, config, manifest, part, published, run_json, run_ok, subprocess_run
 

@@ -30,10 +30,11 @@ import pyarrow.parquet as pq
 from .audit import published_runs
 from ..config import SCORE_NAMES, Config
 from ..errors import StoreError
-from ..select.rules import Selection, class_percentile
+from ..difficulty import DIFFICULTY_SIGN, class_percentile
 
 if TYPE_CHECKING:  # the audit commands import this module: keep the model libraries out of their start-up
     from ..scores.dynamics import Scores
+    from ..select.rules import Selection
     from ..load.table import RowFrame
     from ..verify.stats import Verdict
 
@@ -146,8 +147,6 @@ class ParentRun:
 
 def read_parent(config: Config) -> ParentRun | None:
     """The last published run of this config's lineage in its store, or None."""
-    from ..scores.dynamics import DIFFICULTY_SIGN
-
     mine = lineage(config)
     runs = [r for r in published_runs(config.store) if r.get("lineage") == mine]
     if not runs:

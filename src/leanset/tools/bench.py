@@ -35,7 +35,7 @@ from ..errors import ConfigError, LeansetError
 from ..models.proxy import gbdt_params
 from ..scores.dynamics import score
 from ..select.rules import select_frame
-from ..load.table import RowFrame, TableSource, _split, load_table
+from ..load.table import RowFrame, TableSource, load_table, split_rows
 
 #: Rows drawn per generator chunk. Fixed: the data depend on it, never on the number of files.
 CHUNK_ROWS = 100_000
@@ -84,7 +84,7 @@ def make_table(rows: int, features: int, classes: int, seed: int = 0, holdout: f
     for start, Xc, yc in table_chunks(rows, features, classes, seed):
         X[start:start + len(yc)], y[start:start + len(yc)] = Xc, yc
     row_id = np.arange(rows, dtype=np.int64)
-    hold, fold = _split(row_id, y, holdout, folds, seed)
+    hold, fold = split_rows(row_id, y, holdout, folds, seed)
     return RowFrame(row_id=row_id, y=y, classes=list(range(classes)), X=X,
                     feature_names=[f"x{j}" for j in range(features)], categorical=[], categories={},
                     holdout=hold, fold=fold, fingerprint="bench",
