@@ -83,15 +83,14 @@ def test_verify_streams_the_training_rows_with_the_same_verdict(tmp_path):
         frame, _, selection = _run(folder, 1_000, memory_mb)
         cfg = Config.model_validate({"input": {"path": str(folder), "label": "target"},
                                      "target": {"params": {"num_boost_round": 30, "num_threads": 1}}, "verify": {"bootstrap": 200}})
-        train, hold = frame.train, np.flatnonzero(frame.holdout)
+        train = frame.train
         X = frame.feature_rows(train)
         assert isinstance(X, RowView) == (memory_mb == 0)
         if memory_mb == 0:
             pick = np.flatnonzero(selection.keep)
             np.testing.assert_array_equal(np.asarray(X[pick]), frame.features(train[pick]))
             assert sum(len(b) for _, b in X[pick].batches()) == len(pick)
-        verdicts[memory_mb] = verify(X, frame.y[train], selection.keep, selection.weight, frame.features(hold), frame.y[hold],
-                                     frame.classes, frame.categorical, cfg.target, cfg.verify, cfg.seed).to_dict()
+        verdicts[memory_mb] = verify(frame, selection, cfg).to_dict()
     streamed, held = verdicts[0], verdicts[1024]
     streamed.pop("train_seconds"), held.pop("train_seconds"), streamed.pop("speedup"), held.pop("speedup")
     assert streamed == held
@@ -100,7 +99,6 @@ def test_verify_streams_the_training_rows_with_the_same_verdict(tmp_path):
 _CHILD = """
 import json, sys
 from pathlib import Path
-import numpy as np
 from leanset.config import Config
 from leanset.scores.dynamics import score
 from leanset.select.rules import select_frame
@@ -110,9 +108,7 @@ cfg = Config.model_validate(json.loads(sys.argv[1]))
 frame = load_table(cfg)
 scores = score(frame, cfg)
 selection = select_frame(frame, scores, cfg)
-train, hold = frame.train, np.flatnonzero(frame.holdout)
-verdict = verify(frame.feature_rows(train), frame.y[train], selection.keep, selection.weight, frame.features(hold),
-                 frame.y[hold], frame.classes, frame.categorical, cfg.target, cfg.verify, cfg.seed)
+verdict = verify(frame, selection, cfg)
 status = dict(line.split(":", 1) for line in Path("/proc/self/status").read_text().splitlines())
 print(json.dumps({"streamed": frame.X is None, "scored": len(scores.table), "train": len(frame.train),
                   "kept": int(selection.keep.sum()), "verdict": verdict.status, "peak_kib": int(status["VmPeak"].split()[0])}))

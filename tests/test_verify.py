@@ -26,10 +26,10 @@ from leanset.errors import ConfigError
 from leanset.select.rules import select
 from leanset.models.target import FittedTarget, fit_target
 from leanset.verify.stats import (
-    mcnemar_exact, metric_value, paired_bootstrap, recall_drop, resampled_metric, verify,
+    mcnemar_exact, metric_value, paired_bootstrap, recall_drop, resampled_metric, verify_rows,
 )
 
-# The module whose ``fit_target`` every fit of ``verify`` goes through, for monkeypatching.
+# The module whose ``fit_target`` every fit of ``verify_rows`` goes through, for monkeypatching.
 target_mod = importlib.import_module("leanset.models.target")
 
 # One LightGBM thread and 50 rounds keep the fits quick when other processes share the CPU
@@ -270,10 +270,10 @@ def _scripted_verify(monkeypatch, kept_wrong, metric="accuracy", tolerance=0.02,
     fake = _Scripted(keep, probas)
     monkeypatch.setattr(target_mod, "fit_target", fake)
     X_train = np.arange(n_train, dtype=float)[:, None]
-    v = verify(X_train, np.arange(n_train) % k, keep, np.ones(n_train), np.zeros((n_hold, 1)), y_hold,
-               [f"c{c}" for c in range(k)], [], LGBM,
-               VerifyConfig(metric=metric, tolerance=tolerance, class_tolerance=class_tolerance, bootstrap=200,
-                            random_repeats=2), seed=0)
+    v = verify_rows(X_train, np.arange(n_train) % k, keep, np.ones(n_train), np.zeros((n_hold, 1)), y_hold,
+                    classes=[f"c{c}" for c in range(k)], categorical=[], target=LGBM,
+                    config=VerifyConfig(metric=metric, tolerance=tolerance, class_tolerance=class_tolerance, bootstrap=200,
+                                        random_repeats=2), seed=0)
     assert sorted(r for r, _, _ in fake.calls) == ["full", "kept", "random", "random"]
     return v, probas
 
@@ -328,8 +328,8 @@ def test_delta_positive_when_kept_is_worse_digits():
     X_tr, y_tr, X_ho, y_ho = _split(load_digits)
     keep = np.zeros(len(y_tr), bool)
     keep[np.random.default_rng(0).choice(len(y_tr), len(y_tr) // 20, replace=False)] = True
-    v = verify(X_tr, y_tr, keep, np.ones(len(y_tr)), X_ho, y_ho, list(range(10)), [], LGBM,
-               VerifyConfig(bootstrap=200), seed=0)
+    v = verify_rows(X_tr, y_tr, keep, np.ones(len(y_tr)), X_ho, y_ho, classes=list(range(10)), categorical=[], target=LGBM,
+                    config=VerifyConfig(bootstrap=200), seed=0)
     assert v.full == pytest.approx(metric_value("accuracy", y_ho, v.models["full"].predict_proba(X_ho)))
     assert v.kept == pytest.approx(metric_value("accuracy", y_ho, v.models["kept"].predict_proba(X_ho)))
     assert v.full > v.kept
@@ -343,8 +343,8 @@ def test_delta_positive_when_kept_is_worse_log_loss_breast_cancer():
     X_tr, y_tr, X_ho, y_ho = _split(load_breast_cancer)
     keep = np.zeros(len(y_tr), bool)
     keep[np.random.default_rng(1).choice(len(y_tr), 45, replace=False)] = True
-    v = verify(X_tr, y_tr, keep, np.ones(len(y_tr)), X_ho, y_ho, [0, 1], [], LGBM,
-               VerifyConfig(metric="log_loss", bootstrap=200), seed=0)
+    v = verify_rows(X_tr, y_tr, keep, np.ones(len(y_tr)), X_ho, y_ho, classes=[0, 1], categorical=[], target=LGBM,
+                    config=VerifyConfig(metric="log_loss", bootstrap=200), seed=0)
     assert v.kept > v.full
     assert v.delta == pytest.approx(v.kept - v.full) and v.delta > 0
     assert v.ci[1] > 0
@@ -354,8 +354,8 @@ def test_dropping_a_class_fails_naming_it():
     # scikit-learn's bundled digits with every training row of digit 3 dropped.
     X_tr, y_tr, X_ho, y_ho = _split(load_digits)
     keep = y_tr != 3
-    v = verify(X_tr, y_tr, keep, np.ones(len(y_tr)), X_ho, y_ho, list(range(10)), [], LGBM,
-               VerifyConfig(bootstrap=200), seed=0)
+    v = verify_rows(X_tr, y_tr, keep, np.ones(len(y_tr)), X_ho, y_ho, classes=list(range(10)), categorical=[], target=LGBM,
+                    config=VerifyConfig(bootstrap=200), seed=0)
     assert v.status == "fail"
     assert v.failed_classes == ["3"]
     assert v.per_class_recall["3"]["kept"] == 0.0
@@ -368,8 +368,8 @@ def test_keeping_everything_passes_with_zero_delta():
     X_tr, y_tr, X_ho, y_ho = _split(load_wine)
     sel = select(np.zeros(len(y_tr)), y_tr, SelectionConfig(fraction=1.0), seed=0)
     assert sel.keep.all() and np.allclose(sel.weight, 1.0)
-    v = verify(X_tr, y_tr, sel.keep, sel.weight, X_ho, y_ho, ["a", "b", "c"], [], LGBM,
-               VerifyConfig(tolerance=0.0, class_tolerance=0.0, bootstrap=200), seed=0)
+    v = verify_rows(X_tr, y_tr, sel.keep, sel.weight, X_ho, y_ho, classes=["a", "b", "c"], categorical=[], target=LGBM,
+                    config=VerifyConfig(tolerance=0.0, class_tolerance=0.0, bootstrap=200), seed=0)
     assert v.status == "pass"
     assert v.delta == 0.0 and v.ci == (0.0, 0.0) and v.full == v.kept
     assert v.failed_classes == []
@@ -383,8 +383,8 @@ def test_sklearn_family_by_import_path():
     X_tr, y_tr, X_ho, y_ho = _split(load_wine, standardise=True)
     keep = np.zeros(len(y_tr), bool)
     keep[::2] = True
-    v = verify(X_tr, y_tr, keep, np.ones(len(y_tr)), X_ho, y_ho, [0, 1, 2], [], LOGREG,
-               VerifyConfig(bootstrap=200), seed=5)
+    v = verify_rows(X_tr, y_tr, keep, np.ones(len(y_tr)), X_ho, y_ho, classes=[0, 1, 2], categorical=[], target=LOGREG,
+                    config=VerifyConfig(bootstrap=200), seed=5)
     est = v.models["full"].estimator
     assert isinstance(est, LogisticRegression) and v.models["full"].booster is None
     assert est.C == 0.5 and est.random_state == 5  # params passed, seed filled in
@@ -411,8 +411,8 @@ def test_bad_import_path_raises_config_error(path, fragment):
     X_tr, y_tr, X_ho, y_ho = _split(load_wine)
     target = TargetConfig(family="sklearn", estimator=path)
     with pytest.raises(ConfigError, match=fragment.replace(".", r"\.")):
-        verify(X_tr, y_tr, np.ones(len(y_tr), bool), np.ones(len(y_tr)), X_ho, y_ho, [0, 1, 2], [], target,
-               VerifyConfig(bootstrap=200), seed=0)
+        verify_rows(X_tr, y_tr, np.ones(len(y_tr), bool), np.ones(len(y_tr)), X_ho, y_ho, classes=[0, 1, 2], categorical=[], target=target,
+                    config=VerifyConfig(bootstrap=200), seed=0)
 
 
 def test_sklearn_family_missing_estimator_or_bad_params():
@@ -445,8 +445,8 @@ def test_weights_passed_to_kept_fit_only(monkeypatch):
         return fit_target(X, y, weight, *args, **kwargs)
 
     monkeypatch.setattr(target_mod, "fit_target", spy)
-    v = verify(X_tr, y_tr, sel.keep, sel.weight, X_ho, y_ho, [0, 1], [], LGBM,
-               VerifyConfig(bootstrap=200, random_repeats=1), seed=0)
+    v = verify_rows(X_tr, y_tr, sel.keep, sel.weight, X_ho, y_ho, classes=[0, 1], categorical=[], target=LGBM,
+                    config=VerifyConfig(bootstrap=200, random_repeats=1), seed=0)
     n_keep = int(sel.keep.sum())
     (n_full, w_full), (n_kept, w_kept), (n_rand, w_rand) = calls
     assert (n_full, n_kept, n_rand) == (len(y_tr), n_keep, n_keep)
@@ -462,7 +462,7 @@ def test_weights_passed_to_kept_fit_only(monkeypatch):
 
 def test_weights_reach_sklearn_estimator():
     X_tr, y_tr, X_ho, y_ho, sel = _weighted_selection()
-    v = verify(X_tr, y_tr, sel.keep, sel.weight, X_ho, y_ho, [0, 1], [], LOGREG, VerifyConfig(bootstrap=200), seed=0)
+    v = verify_rows(X_tr, y_tr, sel.keep, sel.weight, X_ho, y_ho, classes=[0, 1], categorical=[], target=LOGREG, config=VerifyConfig(bootstrap=200), seed=0)
     # sklearn's LogisticRegression fitted directly with sample_weight is the reference.
     ref = LogisticRegression(C=0.5, max_iter=2000, random_state=0)
     ref.fit(X_tr[sel.keep], y_tr[sel.keep], sample_weight=sel.weight[sel.keep])

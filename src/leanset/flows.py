@@ -15,7 +15,6 @@ import time  # noqa: E402
 from pathlib import Path  # noqa: E402
 from typing import Any  # noqa: E402
 
-import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
 from prefect import flow, task  # noqa: E402
 from prefect.cache_policies import NO_CACHE  # noqa: E402
@@ -65,15 +64,8 @@ def select_task(frame: RowFrame, scores: Scores, config: Config) -> Selection:
 
 @task(name="verify", cache_policy=NO_CACHE)
 def verify_task(frame: RowFrame, selection: Selection, config: Config, evaluator: FractionEvaluator | None) -> Verdict:
-    train, hold = frame.train, frame.holdout
-    # the evaluator of a searched fraction already holds both feature sets
-    X, X_hold = ((evaluator.X, evaluator.X_hold) if evaluator is not None
-                 else (frame.feature_rows(train), frame.features(np.flatnonzero(hold))))
-    return verify(X, frame.y[train], selection.keep, selection.weight,
-                  X_hold, frame.y[hold], frame.classes, frame.categorical,
-                  config.target, config.verify, config.seed,
-                  None if frame.segments is None else frame.segments[hold], frame.segment_names,
-                  full=None if evaluator is None else (evaluator.full_model_, evaluator.full_seconds_))
+    # the evaluator of a searched fraction already holds the full-data fit and both feature sets
+    return verify(frame, selection, config, None if evaluator is None else evaluator.reference)
 
 
 @task(name="fit-full", cache_policy=NO_CACHE)

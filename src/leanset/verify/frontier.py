@@ -19,7 +19,7 @@ from ..scores.dynamics import Scores
 from ..select.rules import select_frame
 from ..load.table import RowFrame
 from ..models.target import fit_timed
-from .stats import compare, metric_interval, metric_value
+from .stats import Reference, compare, metric_interval, metric_value
 
 DEFAULT_GRID = (0.05, 0.1, 0.2, 0.3, 0.5, 0.7)
 STRATEGIES = ("stratified", "hardest", "easiest", "random")
@@ -44,6 +44,11 @@ class FractionEvaluator:
         self.full_model_, self.full_seconds_ = fit_timed(self.X, self.y, None, len(frame.classes), frame.categorical,
                                                          config.target, config.seed)
         self.proba_full_ = self.full_model_.predict_proba(self.X_hold)
+
+    @property
+    def reference(self) -> Reference:
+        """The full-data fit and the feature rows it used, for :func:`~leanset.verify.stats.verify` to reuse."""
+        return Reference(self.full_model_, self.full_seconds_, self.X, self.X_hold)
 
     def _fit(self, idx: np.ndarray, weight: np.ndarray | None, seed: int) -> tuple[np.ndarray, float]:
         model, seconds = fit_timed(self.X[idx], self.y[idx], weight, len(self.frame.classes), self.frame.categorical,

@@ -10,15 +10,19 @@ it or when a class's recall drop is surely above ``class_tolerance`` (its interv
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from scipy import stats
 from sklearn import metrics
 
-from ..config import REGRESSION_METRICS, TargetConfig, VerifyConfig
+from ..config import REGRESSION_METRICS, Config, TargetConfig, VerifyConfig
 from ..errors import ConfigError
 from ..models.target import FittedTarget, fit_timed
+
+if TYPE_CHECKING:
+    from ..load.table import RowFrame
+    from ..select.rules import Selection
 
 #: +1 when higher is better.
 ORIENTATION = {"accuracy": 1, "balanced_accuracy": 1, "macro_f1": 1, "roc_auc": 1, "log_loss": -1,
@@ -274,12 +278,63 @@ class Verdict(Comparison):
         return d
 
 
-def verify(X_train: np.ndarray, y_train: np.ndarray, keep: np.ndarray, weight: np.ndarray,
-           X_hold: np.ndarray, y_hold: np.ndarray, classes: list, categorical: list[int],
-           target: TargetConfig, config: VerifyConfig, seed: int,
-           segments_hold: np.ndarray | None = None, segment_names: tuple[str, ...] = (),
-           full: tuple[FittedTarget, float] | None = None) -> Verdict:
+@dataclass(frozen=True)
+class Reference:
+    """A target already trained on all training rows, and the feature rows it was trained and judged on.
+
+    Attributes
+    ----------
+    model : FittedTarget
+    seconds : float
+        Its training time.
+    X : ndarray or RowView, shape (n, f)
+        The training rows' features, in ``frame.train`` order.
+    X_hold : ndarray, shape (m, f)
+        The holdout rows' features.
+    """
+
+    model: FittedTarget
+    seconds: float
+    X: Any
+    X_hold: np.ndarray
+
+
+def verify(frame: RowFrame, selection: Selection, config: Config, reference: Reference | None = None) -> Verdict:
+    """Verify stage: the target trained on the kept rows against all and random training rows, on the holdout.
+
+    Parameters
+    ----------
+    frame : RowFrame
+    selection : Selection
+        Which training rows are kept, and their weights.
+    config : Config
+        ``target``, ``verify`` and ``seed`` are read.
+    reference : Reference, optional
+        A full-data fit to reuse (the frontier's, when the fraction was searched); trained here otherwise.
+
+    Returns
+    -------
+    Verdict
+    """
+    train, hold = frame.train, frame.holdout
+    if reference is None:
+        X, X_hold, full = frame.feature_rows(train), frame.features(np.flatnonzero(hold)), None
+    else:
+        X, X_hold, full = reference.X, reference.X_hold, (reference.model, reference.seconds)
+    return verify_rows(X, frame.y[train], selection.keep, selection.weight, X_hold, frame.y[hold],
+                       classes=frame.classes, categorical=frame.categorical, target=config.target, config=config.verify,
+                       seed=config.seed, segments_hold=None if frame.segments is None else frame.segments[hold],
+                       segment_names=frame.segment_names, full=full)
+
+
+def verify_rows(X_train: np.ndarray, y_train: np.ndarray, keep: np.ndarray, weight: np.ndarray,
+                X_hold: np.ndarray, y_hold: np.ndarray, *, classes: list, categorical: list[int],
+                target: TargetConfig, config: VerifyConfig, seed: int,
+                segments_hold: np.ndarray | None = None, segment_names: tuple[str, ...] = (),
+                full: tuple[FittedTarget, float] | None = None) -> Verdict:
     """Train the target on full, kept and same-size random training rows; judge Δ on the holdout.
+
+    :func:`verify` on given arrays, for a split other than the table's own.
 
     Parameters
     ----------
