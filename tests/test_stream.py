@@ -20,7 +20,7 @@ from sklearn.datasets import load_digits
 from leanset.config import Config
 from leanset.scores.dynamics import score
 from leanset.select.rules import select_frame
-from leanset.load.table import RowView, load_table
+from leanset.load import RowView, load_table
 from leanset.verify.stats import verify
 
 

@@ -11,7 +11,7 @@ from .errors import ConfigError, InputError, LeansetError, StoreError
 # without loading the model libraries (LightGBM, scikit-learn, SciPy).
 _LAZY = {
     "Config": "config", "load_config": "config", "Scores": "scores.dynamics", "score": "scores.dynamics",
-    "Selection": "select.rules", "write_run": "store.publish", "RowFrame": "load.table", "load_table": "load.table",
+    "Selection": "select.rules", "write_run": "store.publish", "RowFrame": "load.rows", "load_table": "load.table",
     "Verdict": "verify.stats",
 }
 

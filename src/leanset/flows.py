@@ -25,7 +25,8 @@ from .verify.frontier import FractionEvaluator, frontier_files, search_fraction,
 from .scores.dynamics import Scores, agreement, score  # noqa: E402
 from .select.rules import Selection, select_frame, stabilise  # noqa: E402
 from .store.publish import ParentRun, read_parent, store_lock, write_run  # noqa: E402
-from .load.table import RowFrame, load_table  # noqa: E402
+from .load.rows import RowFrame  # noqa: E402
+from .load.table import load_table  # noqa: E402
 from .verify.stats import Verdict, verify  # noqa: E402
 
 

@@ -1,14 +1,12 @@
-"""Load stage: read the table, check it, derive row ids, split off the holdout, assign folds.
+"""Load stage: read the table in batches, check it against the config, and build the :class:`RowFrame`.
 
-The holdout and the folds are drawn from seeded hashes of the row ids, per class, so they do
-not depend on row order or on how the table is cut into files.
+Row ids, the holdout and the folds come from :mod:`leanset.load.split`; the frame and its lazy
+row view live in :mod:`leanset.load.rows`.
 """
 
 from __future__ import annotations
 
-import ctypes
 import hashlib
-from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -21,150 +19,12 @@ import pyarrow.parquet as pq
 
 from ..config import REGRESSION_METRICS, Config
 from ..errors import ConfigError, InputError
+from .memory import release_memory
+from .rows import RowFrame, encode_columns
+from .split import _derive_ids, _row_hashes, split_rows
 
 #: Columns leanset adds to its outputs; an input column of the same name would be shadowed.
 RESERVED = ("weight",)
-
-
-@dataclass(frozen=True)
-class RowFrame:
-    """The checked, typed table every later stage works on.
-
-    Attributes
-    ----------
-    row_id : pandas.arrays.ArrowStringArray, shape (n,)
-        Row ids as Arrow strings (a Python object per row would outweigh the features).
-    y : ndarray of int32, shape (n,)
-        Label codes, indices into ``classes``; float64 label values on a regression table.
-    classes : list
-        The label values, sorted; empty on a regression table.
-    X : ndarray of float32, shape (n, n_features), or None
-        Numeric features as given, categorical features as integer codes (NaN for missing); None
-        when the matrix is larger than ``execution.feature_memory_mb`` and is read in batches.
-    feature_names : list of str
-    categorical : list of int
-        Column indices of ``X`` that hold categorical codes.
-    categories : dict
-        Category values of each categorical feature, in code order.
-    holdout : ndarray of bool, shape (n,)
-    fold : ndarray of int8, shape (n,)
-        Cross-fitting fold of each training row, -1 on holdout rows.
-    fingerprint : str
-        Hash of the schema and the content of every row, in order.
-    segments : ndarray of int32, shape (n, len(segment_names)), optional
-        Codes of the ``input.segments`` columns (missing values form their own code).
-    task : str
-        ``classification`` or ``regression``.
-    bins : ndarray of int32, shape (n,), optional
-        Label-quantile bin of each row on a regression table, standing in for classes.
-    source : TableSource
-        The original columns (plus ``row_id`` when it was derived), read on demand.
-    feature_hash : ndarray of uint64, shape (n,)
-        A 64-bit hash of each row's feature values (NaN equal to NaN), to find exact duplicates.
-    """
-
-    row_id: pd.api.extensions.ExtensionArray | np.ndarray
-    y: np.ndarray
-    classes: list
-    X: np.ndarray | None
-    feature_names: list[str]
-    categorical: list[int]
-    categories: dict[str, list]
-    holdout: np.ndarray
-    fold: np.ndarray
-    fingerprint: str
-    source: TableSource
-    feature_hash: np.ndarray | None = None
-    segments: np.ndarray | None = None
-    segment_names: tuple[str, ...] = ()
-    task: str = "classification"
-    bins: np.ndarray | None = None
-
-    @property
-    def groups(self) -> np.ndarray:
-        """Codes that stratify the holdout, folds and quotas: the class, or the label-quantile bin (regression)."""
-        return self.y if self.bins is None else self.bins
-
-    @property
-    def train(self) -> np.ndarray:
-        """Indices of the training rows (those that may be pruned)."""
-        return np.flatnonzero(~self.holdout)
-
-    def encode(self, batch: pa.Table | pa.RecordBatch) -> np.ndarray:
-        """The float32 feature matrix of a batch of original columns, with this run's category codes."""
-        k = len(self.feature_names) - len(self.categorical)
-        names = self.feature_names
-        return encode_columns(batch.select(names).to_pandas(), names[:k], names[k:], self.categories)
-
-    def feature_batches(self, train_only: bool = False):
-        """Yield ``(start, X_batch)`` over all rows in table order: slices of ``X``, or batches read
-        from disk. With ``train_only``, holdout rows are left out and ``start`` counts training rows."""
-        at = 0
-        for start, X in self._batches():
-            if train_only:
-                X = X[~self.holdout[start:start + len(X)]]
-            yield (at if train_only else start), X
-            at += len(X)
-
-    def _batches(self):
-        if self.X is not None:
-            step = self.source.batch_rows
-            for start in range(0, len(self.X), step):
-                yield start, self.X[start:start + step]
-            return
-        start = 0
-        for batch in self.source.batches(self.feature_names):
-            yield start, self.encode(batch)
-            start += batch.num_rows
-
-    def features(self, rows: np.ndarray) -> np.ndarray:
-        """The float32 features of ``rows`` (ascending positions in table order), gathered in one
-        pass over the batches when ``X`` is not in memory."""
-        if self.X is not None:
-            return self.X[rows]
-        out = np.empty((len(rows), len(self.feature_names)), np.float32)
-        for lo, X in RowView(self, rows).batches():
-            out[lo:lo + len(X)] = X
-        return out
-
-    def feature_rows(self, rows: np.ndarray):
-        """The float32 features of ``rows`` (ascending positions in table order): an array when ``X``
-        is in memory, else a :class:`RowView` that reads them from disk when used."""
-        return self.X[rows] if self.X is not None else RowView(self, rows)
-
-
-class RowView:
-    """Rows of a :class:`RowFrame` whose features are not held, read in batches when used.
-
-    ``view[idx]`` is the view of those of its rows (``idx`` ascending), ``np.asarray(view)``
-    gathers them, and :meth:`batches` streams them, so LightGBM can train on any subset of a
-    table larger than memory through its ``Sequence`` interface.
-    """
-
-    def __init__(self, frame: RowFrame, rows: np.ndarray):
-        self.frame, self.rows = frame, np.asarray(rows)
-        self.batch_rows = frame.source.batch_rows
-
-    def __len__(self) -> int:
-        return len(self.rows)
-
-    @property
-    def shape(self) -> tuple[int, int]:
-        return len(self.rows), len(self.frame.feature_names)
-
-    def __getitem__(self, idx) -> RowView:
-        return RowView(self.frame, self.rows[idx])
-
-    def __array__(self, dtype=None, copy=None) -> np.ndarray:
-        X = self.frame.features(self.rows)
-        return X if dtype is None else X.astype(dtype, copy=False)
-
-    def batches(self):
-        """Yield ``(start, X_batch)``: the view's rows in order, ``start`` counting them."""
-        for start, X in self.frame.feature_batches():
-            lo, hi = np.searchsorted(self.rows, (start, start + len(X)))
-            if hi > lo:
-                yield int(lo), X[self.rows[lo:hi] - start]
 
 
 def _dataset(path: Path) -> ds.Dataset:
@@ -316,78 +176,11 @@ def check_input(config: Config) -> None:
     _check_label_and_id(table, config, path)
 
 
-def _hash_key(purpose: str, seed: int) -> str:
-    return hashlib.sha256(f"{purpose}:{seed}".encode()).hexdigest()[:16]
-
-
-def _row_hashes(df: pd.DataFrame) -> np.ndarray:
-    return pd.util.hash_pandas_object(df, index=False).to_numpy(np.uint64)
-
-
-#: Rows per step where a whole-table step makes Python objects or hashes strings (bounds its temporaries).
-_STEP = 1 << 16
-
-
-_HEX = np.frombuffer(b"0123456789abcdef", dtype=np.uint8)
-_NIBBLES = np.arange(60, -4, -4, dtype=np.uint64)
-
-
-def _derive_ids(content: np.ndarray) -> pa.ChunkedArray:
-    """Row ids ``<content hash as 16 hex digits>-<occurrence>``, built without a Python object per row."""
-    occurrence = pd.Series(content).groupby(content).cumcount().to_numpy()
-    chunks = []
-    for s in range(0, len(content), _STEP):
-        digits = _HEX[((content[s:s + _STEP, None] >> _NIBBLES) & np.uint64(15)).astype(np.uint8)]
-        hexes = pa.array(np.ascontiguousarray(digits).view("S16").ravel()).cast(pa.string())
-        chunks.append(pc.binary_join_element_wise(hexes, pa.array(occurrence[s:s + _STEP].astype("S20")).cast(pa.string()), "-"))
-    return pa.chunked_array(chunks, pa.string())
-
-
-def split_rows(row_id: np.ndarray, y: np.ndarray, fraction: float, folds: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
-    """Stratified holdout and fold assignment from seeded hashes of the row ids."""
-    key = _hash_key("holdout", seed)
-    # hashed a step at a time: a string array becomes Python objects only one step at a time
-    u = np.concatenate([pd.util.hash_array(np.asarray(row_id[s:s + _STEP], dtype=None if isinstance(row_id, np.ndarray) else object),
-                                           hash_key=key) for s in range(0, len(row_id), _STEP)] or [np.empty(0, np.uint64)])
-    order = np.lexsort((u, y))  # by class, then hash
-    counts = np.bincount(y)
-    starts = np.concatenate(([0], np.cumsum(counts)[:-1]))
-    rank = np.empty(len(y), dtype=np.int64)
-    rank[order] = np.arange(len(y)) - np.repeat(starts, counts)
-    n_hold = np.maximum(1, np.round(fraction * counts).astype(np.int64))
-    holdout = rank < n_hold[y]
-    fold = ((rank - n_hold[y]) % folds).astype(np.int8)
-    fold[holdout] = -1
-    return holdout, fold
-
-
 def _segment_codes(table: pa.Table, names: list[str], path: Path) -> np.ndarray | None:
     if not names:
         return None
     codes = [pd.factorize(table.column(n).to_pandas(), use_na_sentinel=False, sort=True)[0] for n in names]
     return np.column_stack(codes).astype(np.int32)
-
-
-def release_memory() -> None:
-    """Hand memory freed by a whole-table pass back to the system: Arrow's pool keeps decoded row
-    groups, and glibc's heap keeps freed batch-sized blocks unless trimmed (no-op elsewhere)."""
-    pa.default_memory_pool().release_unused()
-    try:
-        ctypes.CDLL("libc.so.6").malloc_trim(0)
-    except (OSError, AttributeError):
-        pass
-
-
-def encode_columns(df: pd.DataFrame, numeric: list[str], categorical: list[str], categories: dict[str, list]) -> np.ndarray:
-    """Float32 features of a frame of original columns: numbers as given, categories as codes (NaN for missing or unseen)."""
-    X = np.empty((len(df), len(numeric) + len(categorical)), dtype=np.float32)
-    for j, name in enumerate(numeric):
-        X[:, j] = pd.to_numeric(df[name], errors="coerce").astype("float64").to_numpy(na_value=np.nan)
-    for j, name in enumerate(categorical, start=len(numeric)):
-        codes = pd.Categorical(df[name].astype("string"), categories=categories[name]).codes.astype(np.float32)
-        codes[codes < 0] = np.nan
-        X[:, j] = codes
-    return X
 
 
 class TableSource:

@@ -25,7 +25,7 @@ from sklearn.preprocessing import OneHotEncoder, StandardScaler
 
 from ..config import ProxyConfig
 from ._lightgbm import training_scores
-from ..load.table import release_memory
+from ..load.memory import release_memory
 
 Checkpoint = Callable[[int, np.ndarray], None]
 _EPS = 1e-300

@@ -12,7 +12,7 @@ import numpy as np
 
 from ..config import TargetConfig
 from ..errors import ConfigError
-from ..load.table import RowView
+from ..load.rows import RowView
 from .proxy import BatchSequence
 
 LIGHTGBM_DEFAULTS: dict[str, Any] = {
@@ -63,7 +63,7 @@ def fit_target(X: np.ndarray, y: np.ndarray, weight: np.ndarray | None, n_classe
                categorical: list[int], config: TargetConfig, seed: int) -> FittedTarget:
     """Train the configured target on (X, y) with optional per-row weights.
 
-    ``X`` may be a :class:`~leanset.load.table.RowView` (features not held): LightGBM then reads it
+    ``X`` may be a :class:`~leanset.load.rows.RowView` (features not held): LightGBM then reads it
     through its ``Sequence`` interface, batch by batch; a scikit-learn estimator gets it gathered.
     """
     if isinstance(X, RowView):

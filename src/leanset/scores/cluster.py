@@ -1,6 +1,6 @@
 """Score stage on a Dask cluster (``execution.engine: dask``), for the gbdt proxy.
 
-The driver keeps only the small per-row arrays of the :class:`~leanset.load.table.RowFrame` (labels,
+The driver keeps only the small per-row arrays of the :class:`~leanset.load.rows.RowFrame` (labels,
 folds, holdout). The input parquet files are cut into partitions of whole row groups, sliced to
 at most ``execution.batch_rows`` rows and spread over the workers; each worker reads its
 partitions, encodes them into float32 features as the load stage does, and keeps the training
@@ -51,7 +51,7 @@ from ..config import SCORE_NAMES, Config, ExecutionConfig, ProxyConfig
 from ..errors import ConfigError, InputError
 from ..models.proxy import FittedProxy, binary_logits, binned_dataset, fit_proxy, gbdt_params, n_checkpoints, proba_matrix
 from .dynamics import Dynamics, ResidualDynamics, Scores, aum_cutoff, margin, repeat_folds, residual_band, stability, threshold_config
-from ..load.table import RowFrame, encode_columns
+from ..load.rows import RowFrame, encode_columns
 
 try:
     import dask.array as da

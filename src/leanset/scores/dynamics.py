@@ -38,7 +38,8 @@ from ..config import Config, ProxyConfig, SCORE_NAMES
 from ..difficulty import DIFFICULTY_SIGN
 from ..errors import ConfigError
 from ..models.proxy import FittedProxy, binned_dataset, fit_proxy, n_checkpoints, softmax
-from ..load.table import RowFrame, release_memory
+from ..load.memory import release_memory
+from ..load.rows import RowFrame
 from ..models.target import fit_target
 
 CHUNK = 65_536

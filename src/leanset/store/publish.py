@@ -35,7 +35,7 @@ from ..difficulty import DIFFICULTY_SIGN, class_percentile
 if TYPE_CHECKING:  # the audit commands import this module: keep the model libraries out of their start-up
     from ..scores.dynamics import Scores
     from ..select.rules import Selection
-    from ..load.table import RowFrame
+    from ..load.rows import RowFrame
     from ..verify.stats import Verdict
 
 PACKAGES = ("leanset", "numpy", "pandas", "pyarrow", "scikit-learn", "lightgbm", "scipy", "prefect", "pydantic")

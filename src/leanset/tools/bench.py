@@ -35,7 +35,9 @@ from ..errors import ConfigError, LeansetError
 from ..models.proxy import gbdt_params
 from ..scores.dynamics import score
 from ..select.rules import select_frame
-from ..load.table import RowFrame, TableSource, load_table, split_rows
+from ..load.rows import RowFrame
+from ..load.split import split_rows
+from ..load.table import TableSource, load_table
 
 #: Rows drawn per generator chunk. Fixed: the data depend on it, never on the number of files.
 CHUNK_ROWS = 100_000

@@ -17,7 +17,7 @@ import pyarrow.parquet as pq
 from ..config import Config
 from ..scores.dynamics import Scores
 from ..select.rules import select_frame
-from ..load.table import RowFrame
+from ..load.rows import RowFrame
 from ..models.target import fit_timed
 from .stats import Reference, compare, metric_interval, metric_value
 

@@ -21,7 +21,7 @@ from ..errors import ConfigError
 from ..models.target import FittedTarget, fit_timed
 
 if TYPE_CHECKING:
-    from ..load.table import RowFrame
+    from ..load.rows import RowFrame
     from ..select.rules import Selection
 
 #: +1 when higher is better.
