@@ -315,6 +315,10 @@ def verify(frame: RowFrame, selection: Selection, config: Config, reference: Ref
     Returns
     -------
     Verdict
+
+    See Also
+    --------
+    verify_rows : the same on given arrays, for a split other than the table's own.
     """
     train, hold = frame.train, frame.holdout
     if reference is None:
@@ -333,8 +337,6 @@ def verify_rows(X_train: np.ndarray, y_train: np.ndarray, keep: np.ndarray, weig
                 segments_hold: np.ndarray | None = None, segment_names: tuple[str, ...] = (),
                 full: tuple[FittedTarget, float] | None = None) -> Verdict:
     """Train the target on full, kept and same-size random training rows; judge Δ on the holdout.
-
-    :func:`verify` on given arrays, for a split other than the table's own.
 
     Parameters
     ----------
