@@ -29,10 +29,10 @@ def _type_name(tp) -> str:
     if origin is typing.Annotated:
         return _type_name(args[0])
     if origin is typing.Literal:
-        return " \\| ".join(f"`{a}`" if isinstance(a, str) else f"`{a!r}`" for a in args)
+        return "one of " + ", ".join(f"`{a}`" for a in args)
     if origin in (typing.Union, types.UnionType):
         names = [_type_name(a) for a in args if a is not type(None)]
-        return " \\| ".join(names) + (" or none" if type(None) in args else "")
+        return " or ".join(names) + (" or none" if type(None) in args else "")
     if origin in (list, dict):
         return f"{origin.__name__} of " + ", ".join(_type_name(a) for a in args)
     if tp is typing.Any:
