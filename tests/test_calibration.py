@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from sklearn.metrics import brier_score_loss, log_loss
 
-from leanset.verify import calibration
+from leanset.verify.stats import calibration
 
 
 def test_calibration_matches_sklearn():

@@ -5,7 +5,7 @@ import pytest
 from sklearn.datasets import load_breast_cancer, load_wine
 
 from leanset.config import SelectionConfig
-from leanset.select import find_duplicates, select
+from leanset.select.rules import find_duplicates, select
 
 
 def _wine():
