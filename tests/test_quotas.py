@@ -1,13 +1,11 @@
-"""Segment quotas and duplicate collapsing of the select stage, and the calibration report."""
+"""Segment quotas and duplicate collapsing of the select stage."""
 
 import numpy as np
 import pytest
 from sklearn.datasets import load_breast_cancer, load_wine
-from sklearn.metrics import brier_score_loss, log_loss
 
 from leanset.config import SelectionConfig
 from leanset.select.rules import find_duplicates, select
-from leanset.verify.stats import calibration
 
 
 def _wine():
@@ -90,14 +88,3 @@ def test_dedupe_off_keeps_copies_in_the_pool():
     assert sel.keep.all()
     sel = select(np.zeros(20), y, SelectionConfig(fraction=1.0, class_floor=0), seed=0, X=X)
     assert sel.keep.sum() == 10
-
-
-def test_calibration_matches_sklearn():
-    """Brier score for binary (sklearn.metrics.brier_score_loss), log loss for multiclass (sklearn.metrics.log_loss)."""
-    rng = np.random.default_rng(0)
-    p = rng.dirichlet([1, 1], size=200)
-    y = rng.integers(0, 2, 200)
-    assert calibration(y, p) == pytest.approx(brier_score_loss(y, p[:, 1]), abs=1e-12)
-    p3 = rng.dirichlet([1, 1, 1], size=200)
-    y3 = rng.integers(0, 3, 200)
-    assert calibration(y3, p3) == pytest.approx(log_loss(y3, p3), abs=1e-12)

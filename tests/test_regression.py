@@ -3,8 +3,8 @@
 Outside sources:
 - data: scikit-learn's bundled diabetes data (``load_diabetes``, unscaled target).
 - per-row and mean squared error, ``rmse``, ``mae``, ``r2``: ``sklearn.metrics``.
-- the residual analogues of the scores: DESIGN.md ("Regression: residual r_t = ŷ_t − y;
-  correct_t = |r_t| ≤ τ; loss r²; margin analogue −|r|"), with forgetting after Toneva et al.,
+- the residual analogues of the scores, as docs/scoring.md defines them (residual r_t = ŷ_t − y;
+  correct_t = |r_t| ≤ τ; loss r²; margin analogue −|r|), with forgetting after Toneva et al.,
   ICLR 2019, and AUM after Pleiss et al., NeurIPS 2020.
 """
 

@@ -1,6 +1,6 @@
 """Proxy and score stages: training-dynamics statistics against their papers' definitions.
 
-Papers (see DESIGN.md):
+Papers (definitions restated in docs/scoring.md):
 - forgetting events: Toneva et al., ICLR 2019, "An Empirical Study of Example Forgetting ...".
 - AUM: Pleiss et al., NeurIPS 2020, "Identifying Mislabeled Data using the Area Under the Margin Ranking".
 - EL2N: Paul, Ganguli, Dziugaite, NeurIPS 2021, "Deep Learning on a Data Diet".

@@ -1,6 +1,6 @@
 """Select stage: class quotas, strategies, reason codes, weights, determinism, coverage.
 
-Sources (see DESIGN.md "Selection"):
+Sources (the papers; docs/selection.md describes the rules):
 - hardest / easiest: Sorscher et al., NeurIPS 2022, "Beyond neural scaling laws".
 - stratified: Zheng et al., ICLR 2023, "Coverage-centric Coreset Selection for High Pruning Rates"
   (drop the hardest beta, bin the rest by difficulty, fill the budget evenly from the smallest bin up).
@@ -20,8 +20,9 @@ import pytest
 from sklearn.datasets import load_digits, load_wine
 
 from leanset.config import SelectionConfig, TargetConfig, load_config
+from leanset.difficulty import class_percentile
 from leanset.scores.dynamics import score
-from leanset.select.rules import REASONS, class_quotas, select
+from leanset.select.rules import REASONS, class_quotas, select, stabilise
 from leanset.load.table import load_table
 from leanset.models.target import fit_target
 from leanset.verify.stats import metric_value
@@ -402,3 +403,63 @@ def test_select_frame_ranks_by_the_given_selections_score():
     assert set(np.flatnonzero(select_frame(frame, scores, config).keep)) == set(range(180, 200))
     el2n = config.selection.model_copy(update={"score": "el2n"})
     assert set(np.flatnonzero(select_frame(frame, scores, config, el2n).keep)) == set(range(20))
+
+
+# --- stabilise: the hysteresis rule on its own -------------------------------------------------
+
+def _fresh(d, y, fraction=0.3, seed=0):
+    return select(d, y, SelectionConfig(fraction=fraction, class_floor=0), seed)
+
+
+def test_stabilise_keeps_decisions_within_the_band():
+    rng = np.random.default_rng(0)
+    y = rng.integers(0, 3, 3000)
+    d = rng.normal(size=3000)
+    parent = _fresh(d, y, seed=1)
+    prev = parent.keep.astype(np.int8)
+    pct = class_percentile(d, y)
+    noisy = d + 0.01 * rng.normal(size=3000)  # scores barely move
+    fresh = _fresh(noisy, y, seed=2)  # another tie-break seed: the fresh pick differs
+    out = stabilise(fresh, noisy, y, prev, pct, hysteresis=0.1, seed=0)
+    assert np.array_equal(out.keep, parent.keep)
+    assert np.array_equal(np.bincount(y[out.keep]), np.bincount(y[fresh.keep]))  # quotas unchanged
+    # every score moved past the band: the fresh selection stands as it is
+    far = stabilise(fresh, noisy, y, prev, pct + 2.0, hysteresis=0.1, seed=0)
+    assert np.array_equal(far.keep, fresh.keep) and np.array_equal(far.reason, fresh.reason)
+    assert far.info["stable"]["moved"] == len(y)
+
+
+def test_stabilise_fills_the_budget_with_new_rows_first():
+    rng = np.random.default_rng(3)
+    n_old, n_new = 2000, 200
+    y = rng.integers(0, 2, n_old + n_new)
+    d = rng.normal(size=n_old + n_new)
+    parent = _fresh(d[:n_old], y[:n_old])
+    prev = np.concatenate((parent.keep.astype(np.int8), np.full(n_new, -1, np.int8)))
+    pct = np.concatenate((class_percentile(d[:n_old], y[:n_old]), np.full(n_new, np.nan)))
+    fresh = _fresh(d, y)
+    out = stabilise(fresh, d, y, prev, pct, hysteresis=0.2, seed=0)
+    for c in (0, 1):
+        in_c = y == c
+        assert out.keep[in_c].sum() == fresh.keep[in_c].sum()
+    new = np.arange(n_old + n_new) >= n_old
+    # new rows come first: no row the parent dropped is taken while a new row the fresh selection keeps is left out
+    assert out.keep[new & fresh.keep].sum() > 0
+    for c in (0, 1):
+        in_c = y == c
+        assert out.keep[in_c & new & fresh.keep].all() or not (out.keep & in_c & (prev == 0)).any()
+    assert (out.keep[:n_old] != parent.keep).mean() < 0.1
+    assert set(out.reason[out.keep & ~fresh.keep]) <= {"keep:stable"}
+    assert out.info["stable"]["new"] == n_new
+
+
+def test_stabilise_never_keeps_a_filtered_row():
+    rng = np.random.default_rng(5)
+    y = rng.integers(0, 2, 1000)
+    d = rng.normal(size=1000)
+    parent = _fresh(d, y)
+    fresh = _fresh(d, y)
+    fresh.keep[:50] = False
+    fresh.reason[:50] = "drop:duplicate"
+    out = stabilise(fresh, d, y, parent.keep.astype(np.int8), class_percentile(d, y), hysteresis=0.5, seed=0)
+    assert not out.keep[:50].any() and (out.reason[:50] == "drop:duplicate").all()

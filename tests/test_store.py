@@ -1,4 +1,4 @@
-"""The run store over time: a growing folder (parent links, churn, new rows), hysteresis, the
+"""The run store over time: a growing folder (parent links, churn, new rows), the
 store lock, concurrent runs, and crash safety under SIGKILL.
 
 Churn and new-row counts are checked against pandas merges of the manifests; conservation
@@ -10,13 +10,9 @@ import signal
 import threading
 import time
 
-import numpy as np
 import pandas as pd
 import pytest
 
-from leanset.config import SelectionConfig
-from leanset.difficulty import class_percentile
-from leanset.select.rules import select, stabilise
 from leanset.store.publish import store_lock
 from store_helpers import assert_conserved, cli, config, manifest, part, published, run_json, run_ok, subprocess_run
 
@@ -66,66 +62,6 @@ def test_another_seed_starts_another_lineage(prefect_api, tmp_path):
     assert b["parent_run"] is None and b["lineage"] != a["lineage"]
     # the fraction is not part of the lineage: a changed or searched fraction keeps its history
     assert c["parent_run"] == a["run_id"] and c["counts"]["kept"] == round(0.3 * c["counts"]["train"])
-
-
-# --- stabilise: the hysteresis rule on its own -------------------------------------------------
-
-def _fresh(d, y, fraction=0.3, seed=0):
-    return select(d, y, SelectionConfig(fraction=fraction, class_floor=0), seed)
-
-
-def test_stabilise_keeps_decisions_within_the_band():
-    rng = np.random.default_rng(0)
-    y = rng.integers(0, 3, 3000)
-    d = rng.normal(size=3000)
-    parent = _fresh(d, y, seed=1)
-    prev = parent.keep.astype(np.int8)
-    pct = class_percentile(d, y)
-    noisy = d + 0.01 * rng.normal(size=3000)  # scores barely move
-    fresh = _fresh(noisy, y, seed=2)  # another tie-break seed: the fresh pick differs
-    out = stabilise(fresh, noisy, y, prev, pct, hysteresis=0.1, seed=0)
-    assert np.array_equal(out.keep, parent.keep)
-    assert np.array_equal(np.bincount(y[out.keep]), np.bincount(y[fresh.keep]))  # quotas unchanged
-    # every score moved past the band: the fresh selection stands as it is
-    far = stabilise(fresh, noisy, y, prev, pct + 2.0, hysteresis=0.1, seed=0)
-    assert np.array_equal(far.keep, fresh.keep) and np.array_equal(far.reason, fresh.reason)
-    assert far.info["stable"]["moved"] == len(y)
-
-
-def test_stabilise_fills_the_budget_with_new_rows_first():
-    rng = np.random.default_rng(3)
-    n_old, n_new = 2000, 200
-    y = rng.integers(0, 2, n_old + n_new)
-    d = rng.normal(size=n_old + n_new)
-    parent = _fresh(d[:n_old], y[:n_old])
-    prev = np.concatenate((parent.keep.astype(np.int8), np.full(n_new, -1, np.int8)))
-    pct = np.concatenate((class_percentile(d[:n_old], y[:n_old]), np.full(n_new, np.nan)))
-    fresh = _fresh(d, y)
-    out = stabilise(fresh, d, y, prev, pct, hysteresis=0.2, seed=0)
-    for c in (0, 1):
-        in_c = y == c
-        assert out.keep[in_c].sum() == fresh.keep[in_c].sum()
-    new = np.arange(n_old + n_new) >= n_old
-    # new rows come first: no row the parent dropped is taken while a new row the fresh selection keeps is left out
-    assert out.keep[new & fresh.keep].sum() > 0
-    for c in (0, 1):
-        in_c = y == c
-        assert out.keep[in_c & new & fresh.keep].all() or not (out.keep & in_c & (prev == 0)).any()
-    assert (out.keep[:n_old] != parent.keep).mean() < 0.1
-    assert set(out.reason[out.keep & ~fresh.keep]) <= {"keep:stable"}
-    assert out.info["stable"]["new"] == n_new
-
-
-def test_stabilise_never_keeps_a_filtered_row():
-    rng = np.random.default_rng(5)
-    y = rng.integers(0, 2, 1000)
-    d = rng.normal(size=1000)
-    parent = _fresh(d, y)
-    fresh = _fresh(d, y)
-    fresh.keep[:50] = False
-    fresh.reason[:50] = "drop:duplicate"
-    out = stabilise(fresh, d, y, parent.keep.astype(np.int8), class_percentile(d, y), hysteresis=0.5, seed=0)
-    assert not out.keep[:50].any() and (out.reason[:50] == "drop:duplicate").all()
 
 
 # --- the lock and concurrent runs ---------------------------------------------------------------

@@ -29,58 +29,107 @@ class _Section(BaseModel):
 
 
 class InputConfig(_Section):
-    path: Path
-    label: str
-    id: str | None = None
-    features: list[str] | None = None
-    exclude: list[str] = Field(default_factory=list)
-    task: Literal["auto", "classification", "regression"] = "auto"
-    segments: list[str] = Field(default_factory=list)
+    path: Path = Field(description=(
+        "Parquet file, folder of parquet files, or CSV/TSV file; a relative path is read from the config file's "
+        "folder."))
+    label: str = Field(description="Label column: classes as strings, integers or booleans, or numbers for regression.")
+    id: str | None = Field(None, description=(
+        "Unique row-id column; when absent a stable id is derived from the row's content and its occurrence index"
+        " (`<hash>-<k>`) and added to `kept.parquet` as `row_id`."))
+    features: list[str] | None = Field(None, description=(
+        "Feature columns (default: every other column); numbers and booleans are used as float32, strings become "
+        "categorical codes."))
+    exclude: list[str] = Field(default_factory=list, description="Columns to leave out of the features.")
+    task: Literal["auto", "classification", "regression"] = Field("auto", description=(
+        "`auto` means regression when the label is a float column holding non-integer values; a label of whole "
+        "numbers stays classes unless this is set to `regression`."))
+    segments: list[str] = Field(default_factory=list, description=(
+        "Columns naming groups to protect (region, device type): each keeps its share and a floor, and is checked"
+        " in verification."))
 
 
 class HoldoutConfig(_Section):
-    fraction: float = Field(0.2, gt=0, lt=1)
+    fraction: float = Field(0.2, gt=0, lt=1, description=(
+        "Share of each class held out, by seeded hash of the row id, and never pruned."))
 
 
 class ProxyConfig(_Section):
-    family: Literal["gbdt", "linear"] = "gbdt"
-    folds: int = Field(5, ge=2, le=20)
-    rounds: int = Field(60, ge=2)
-    checkpoint_every: int = Field(5, ge=1)
-    epochs: int = Field(10, ge=2)
-    el2n_at: float = Field(0.2, gt=0, le=1)
-    params: dict[str, Any] = Field(default_factory=dict)
-    repeats: int = Field(1, ge=1, le=20)
-    residual_band: float | None = Field(None, gt=0)
-    residual_quantile: float = Field(0.25, gt=0, lt=1)
-    threshold_samples: bool = True
-    threshold_percentile: float = Field(90.0, gt=0, lt=100)
-    threshold_share: float = Field(0.1, gt=0, le=0.5)
-    threshold_rounds: int | None = Field(None, ge=2)
-    agreement_rows: int = Field(2000, ge=0)
-    agreement_floor: float = Field(0.3, ge=-1, le=1)
+    family: Literal["gbdt", "linear"] = Field("gbdt", description=(
+        "`gbdt` = LightGBM; `linear` = SGD logistic regression on standardised numeric and one-hot categorical "
+        "features."))
+    folds: int = Field(5, ge=2, le=20, description="Cross-fitting folds K.")
+    rounds: int = Field(60, ge=2, description="`gbdt`: boosting rounds of each fold model.")
+    checkpoint_every: int = Field(5, ge=1, description=(
+        "`gbdt`: boosting rounds between two checkpoints at which the training dynamics are read."))
+    epochs: int = Field(10, ge=2, description="`linear`: epochs, one checkpoint each.")
+    el2n_at: float = Field(0.2, gt=0, le=1, description=(
+        "EL2N is read at this share of the checkpoints (early in training, as in the EL2N paper)."))
+    params: dict[str, Any] = Field(default_factory=dict, description=(
+        "Extra LightGBM or SGDClassifier (SGDRegressor for regression) parameters."))
+    repeats: int = Field(1, ge=1, le=20, description=(
+        "Cross-fitting passes on fresh seeded folds and proxy seeds; each score is the mean over passes and "
+        "`run.json` reports its stability (`scores.stability`)."))
+    residual_band: float | None = Field(None, gt=0, description=(
+        "Regression: largest |ŷ − y| that counts as correct; when unset, the `residual_quantile` of |y − "
+        "median(y)| over training rows."))
+    residual_quantile: float = Field(0.25, gt=0, lt=1, description=(
+        "Regression: quantile of |y − median(y)| that sets the band when `residual_band` is unset."))
+    threshold_samples: bool = Field(True, description=(
+        "Flag suspected label errors by AUM threshold samples (two extra proxy fits)."))
+    threshold_percentile: float = Field(90.0, gt=0, lt=100, description=(
+        "Percentile of the threshold rows' AUM that sets the suspected-label cut-off."))
+    threshold_share: float = Field(0.1, gt=0, le=0.5, description=(
+        "Largest share of rows given the fake class in one threshold-sample pass."))
+    threshold_rounds: int | None = Field(None, ge=2, description=(
+        "`gbdt`: boosting rounds of each threshold-sample pass; when unset, half of `rounds`."))
+    agreement_rows: int = Field(2000, ge=0, description=(
+        "Proxy–target agreement: rows sampled to cross-fit the target on (0 turns the check off)."))
+    agreement_floor: float = Field(0.3, ge=-1, le=1, description=(
+        "Spearman correlation between proxy difficulty and target loss below which the summary warns (a weak "
+        "correlation: common practice, no source)."))
 
 
 class SelectionConfig(_Section):
-    fraction: Annotated[float, Field(gt=0, le=1)] | Literal["auto"] = 0.3
-    grid: list[Annotated[float, Field(gt=0, le=1)]] = Field(default_factory=lambda: [0.05, 0.1, 0.2, 0.3, 0.5, 0.7], min_length=1)
-    strategy: Literal["stratified", "hardest", "easiest", "random"] = "stratified"
-    score: Literal[SCORE_NAMES] = "aum"  # type: ignore[valid-type]
-    quotas: Literal["balanced", "proportional"] = "balanced"
-    class_floor: int = Field(50, ge=0)
-    strata: int = Field(50, ge=1)
-    hard_cut: float = Field(0.05, ge=0, lt=1)
-    weights: Literal["class_prior", "none"] = "class_prior"
-    hysteresis: float = Field(0.1, ge=0, le=1)
-    drop_suspect_labels: bool = False
-    segment_floor: int = Field(20, ge=0)
-    dedupe: bool = True
+    fraction: Annotated[float, Field(gt=0, le=1)] | Literal["auto"] = Field(0.3, description=(
+        "Share of the training rows to keep, or `auto`: the smallest fraction that passes verification."))
+    grid: list[Annotated[float, Field(gt=0, le=1)]] = Field(default_factory=lambda: [0.05, 0.1, 0.2, 0.3, 0.5, 0.7], min_length=1, description=(
+        "Fractions tried by `fraction: auto` and by `leanset frontier`."))
+    strategy: Literal["stratified", "hardest", "easiest", "random"] = Field("stratified", description=(
+        "Selection rule within each class: `stratified`, `hardest`, `easiest` or `random`."))
+    score: Literal[SCORE_NAMES] = Field("aum", description=(  # type: ignore[valid-type]
+        "The score column that ranks difficulty; leanset orients it so that higher means harder."))
+    quotas: Literal["balanced", "proportional"] = Field("balanced", description=(
+        "Class quotas: `balanced` (water-filling: equal counts, a small class keeps all its rows and what it "
+        "leaves goes to the larger ones) or `proportional` (each class keeps its share)."))
+    class_floor: int = Field(50, ge=0, description=(
+        "Every class keeps at least min(n_c, class_floor) rows; if the floors exceed the budget, the budget grows"
+        " and the summary says by how much."))
+    strata: int = Field(50, ge=1, description="`stratified`: difficulty bins per class.")
+    hard_cut: float = Field(0.05, ge=0, lt=1, description=(
+        "`stratified`: hardest share of each class set aside first as likely label noise."))
+    weights: Literal["class_prior", "none"] = Field("class_prior", description=(
+        "`class_prior`: kept rows carry a `weight` so that weighted class shares equal the full table's; `none`: "
+        "weight 1."))
+    hysteresis: float = Field(0.1, ge=0, le=1, description=(
+        "On a store with a run of this lineage: a row keeps its last decision unless its percentile of difficulty"
+        " within its class moved by more than this."))
+    drop_suspect_labels: bool = Field(False, description=(
+        "Drop rows whose `suspect_label` is true (`drop:suspect_label`); the budget stays round(fraction × "
+        "training rows)."))
+    segment_floor: int = Field(20, ge=0, description=(
+        "Every value of every segment column keeps at least min(n_v, segment_floor) rows."))
+    dedupe: bool = Field(True, description=(
+        "Exact duplicates (same features and label) collapse to their first occurrence, which carries "
+        "`dup_count`."))
 
 
 class TargetConfig(_Section):
-    family: Literal["lightgbm", "sklearn"] = "lightgbm"
-    estimator: str | None = None
-    params: dict[str, Any] = Field(default_factory=dict)
+    family: Literal["lightgbm", "sklearn"] = Field("lightgbm", description=(
+        "`lightgbm` (parameters in `params`, `num_boost_round` default 300) or `sklearn`."))
+    estimator: str | None = Field(None, description=(
+        "With `sklearn`: import path of an estimator class, e.g. "
+        "`sklearn.ensemble.HistGradientBoostingClassifier`."))
+    params: dict[str, Any] = Field(default_factory=dict, description="Parameters of the target model.")
 
     @field_validator("estimator")
     @classmethod
@@ -91,34 +140,50 @@ class TargetConfig(_Section):
 
 
 class VerifyConfig(_Section):
-    metric: Literal[METRICS] = "accuracy"  # type: ignore[valid-type]
-    tolerance: float = Field(0.01, ge=0)
-    class_tolerance: float = Field(0.10, ge=0)
-    segment_tolerance: float = Field(0.05, ge=0)
-    random_repeats: int = Field(3, ge=1)
-    bootstrap: int = Field(1000, ge=100)
-    confidence: float = Field(0.95, gt=0.5, lt=1)
+    metric: Literal[METRICS] = Field("accuracy", description=(  # type: ignore[valid-type]
+        "Holdout metric, from `sklearn.metrics` (`roc_auc` is macro one-vs-rest for multiclass); on a regression "
+        "table `rmse`, `mae` or `r2`, and `rmse` by default."))
+    tolerance: float = Field(0.01, ge=0, description=(
+        "Largest acceptable Δ = metric(full) − metric(kept), in the metric's own units."))
+    class_tolerance: float = Field(0.10, ge=0, description="Largest acceptable drop of any class's recall.")
+    segment_tolerance: float = Field(0.05, ge=0, description=(
+        "Largest acceptable Δ of the metric within any segment value."))
+    random_repeats: int = Field(3, ge=1, description=(
+        "Same-size uniform random subsets trained for the baseline; their spread widens the random interval."))
+    bootstrap: int = Field(1000, ge=100, description="Paired bootstrap resamples of the holdout.")
+    confidence: float = Field(0.95, gt=0.5, lt=1, description="Level of the bootstrap intervals.")
 
 
 class ExecutionConfig(_Section):
-    engine: Literal["local", "dask"] = "local"
-    address: str | None = None
-    workers: int = Field(2, ge=1, le=64)
-    dask_fits: Literal["data_parallel", "fold_parallel"] = "data_parallel"
-    batch_rows: int = Field(65_536, ge=100)
-    feature_memory_mb: float = Field(1024, ge=0)
+    engine: Literal["local", "dask"] = Field("local", description=(
+        "`local`, or `dask`: the score stage runs on a Dask cluster."))
+    address: str | None = Field(None, description=(
+        "`dask`: scheduler address of an existing cluster (`tcp://host:8786`); when unset, a local cluster of "
+        "`workers` processes is started and closed."))
+    workers: int = Field(2, ge=1, le=64, description=(
+        "`dask`: processes of the local cluster started when `address` is unset."))
+    dask_fits: Literal["data_parallel", "fold_parallel"] = Field("data_parallel", description=(
+        "`dask`: `data_parallel` trains each proxy with `lightgbm.dask` over all workers; `fold_parallel` trains "
+        "each proxy whole on one worker, so the decisions equal a local run's."))
+    batch_rows: int = Field(65_536, ge=100, description=(
+        "Rows per record batch when the table is read, binned, scored and written."))
+    feature_memory_mb: float = Field(1024, ge=0, description=(
+        "The float32 feature matrix is held in memory when it fits in this many MiB; a larger table is read from "
+        "disk in batches."))
 
 
 class Config(_Section):
-    input: InputConfig
-    holdout: HoldoutConfig = HoldoutConfig()
-    proxy: ProxyConfig = ProxyConfig()
-    selection: SelectionConfig = SelectionConfig()
-    target: TargetConfig = TargetConfig()
-    verify: VerifyConfig = VerifyConfig()
-    execution: ExecutionConfig = ExecutionConfig()
-    store: Path = Path("leanset-store")
-    seed: int = Field(0, ge=0)
+    input: InputConfig = Field(description="The table and its columns.")
+    holdout: HoldoutConfig = Field(HoldoutConfig(), description="The never-pruned holdout.")
+    proxy: ProxyConfig = Field(ProxyConfig(), description="The cheap proxy model and the scores read from it.")
+    selection: SelectionConfig = Field(SelectionConfig(), description="Which rows to keep.")
+    target: TargetConfig = Field(TargetConfig(), description="The target model trained in verification.")
+    verify: VerifyConfig = Field(VerifyConfig(), description="How the kept rows are judged.")
+    execution: ExecutionConfig = Field(ExecutionConfig(), description="Where and in what batches the work runs.")
+    store: Path = Field(Path("leanset-store"), description=(
+        "Folder that receives `runs/`; a relative path is read from the config file's folder."))
+    seed: int = Field(0, ge=0, description=(
+        "Seeds every random choice: holdout, folds, proxies, tie-breaks, random baseline, bootstrap."))
 
     def section_hash(self, *sections: str) -> str:
         """Short hash of the named sections (all of them when none is named)."""

@@ -1,6 +1,6 @@
 """Score stage: cross-fit the proxy and give every training row its difficulty statistics.
 
-Definitions (DESIGN.md; z_t logits at checkpoint t of a model that trained on the row,
+Definitions (docs/scoring.md; z_t logits at checkpoint t of a model that trained on the row,
 p_t = softmax(z_t), y the label, correct_t = [argmax p_t = y]):
 
 - ``forgetting``: count of t > 1 with correct_{t-1} = 1 and correct_t = 0, summed over the
@@ -136,7 +136,7 @@ class Dynamics:
 
 
 class ResidualDynamics:
-    """Running per-row statistics of a regression proxy's checkpoints (the DESIGN.md analogues).
+    """Running per-row statistics of a regression proxy's checkpoints (the analogues in docs/scoring.md).
 
     With r_t = ŷ_t − y and correct_t = [|r_t| ≤ band]: ``forgetting`` and ``correctness`` as for
     classes, ``aum`` the mean of the margin analogue −|r_t|, ``el2n`` |r_e| at the early
