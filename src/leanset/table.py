@@ -10,6 +10,7 @@ import ctypes
 import hashlib
 from dataclasses import dataclass
 from pathlib import Path
+from typing import NamedTuple
 
 import numpy as np
 import pandas as pd
@@ -239,6 +240,8 @@ def _check_classes(label, config: Config, path: Path) -> None:
 
 def _check_label_and_id(table: pa.Table, config: Config, path: Path) -> None:
     inp = config.input
+    if table.num_rows == 0:
+        raise InputError(f"{path}: the table has no rows; point input.path at a table that holds data")
     if inp.label not in table.column_names:
         raise InputError(f"{path}: label column '{inp.label}' not found (columns: {', '.join(table.column_names[:20])}); fix input.label")
     label = table.column(inp.label)
@@ -300,8 +303,39 @@ def label_bins(y: np.ndarray, bins: int = LABEL_BINS) -> np.ndarray:
     return np.minimum(((ranks - 1) * bins / len(y)).astype(np.int32), bins - 1)
 
 
-def check_input(config: Config) -> None:
-    """Check the table against the config by reading its schema, label and id columns only.
+class InputSummary(NamedTuple):
+    """What :func:`check_input` learned of the table: enough to check the models' settings."""
+
+    task: str
+    rows: int
+    n_classes: int
+    n_features: int
+    n_categorical: int
+
+
+def _refuse_infinite(counts: dict[str, int], first_row: dict[str, int], path: Path) -> None:
+    """Refuse infinite feature values, naming the first column that holds them and its count."""
+    bad = [name for name, k in counts.items() if k]
+    if bad:
+        name = bad[0]
+        more = f" (and {len(bad) - 1} more columns)" if len(bad) > 1 else ""
+        raise InputError(f"{path}: feature column '{name}' holds {counts[name]} infinite values, the first in row {first_row[name]}{more}; "
+                         f"replace them with NaN (read as missing) or finite numbers, or add '{name}' to input.exclude")
+
+
+def _count_infinite(batch, names: list[str], start: int, counts: dict[str, int], first_row: dict[str, int]) -> None:
+    """Add the infinite values of the float columns ``names`` of ``batch`` (rows from ``start``) to ``counts``."""
+    for name in names:
+        inf = pc.is_inf(batch.column(name))
+        k = pc.sum(inf).as_py() or 0
+        if k and not counts[name]:
+            first_row[name] = start + int(np.flatnonzero(inf.to_numpy(zero_copy_only=False))[0])
+        counts[name] += k
+
+
+def check_input(config: Config) -> InputSummary:
+    """Check the table against the config: its schema, label and id columns, and one pass over its
+    float feature columns for infinite values (NaN is read as missing; infinity is refused).
 
     Raises
     ------
@@ -310,10 +344,20 @@ def check_input(config: Config) -> None:
     """
     path = config.input.path
     dataset = _dataset(path)
-    _feature_columns(dataset.schema, config, path)
+    numeric, categorical = _feature_columns(dataset.schema, config, path)
     cols = [c for c in (config.input.label, config.input.id, *RESERVED) if c is not None and c in dataset.schema.names]
     table = _read(dataset, path, cols)
     _check_label_and_id(table, config, path)
+    floats = [n for n in numeric if pa.types.is_floating(dataset.schema.field(n).type)]
+    counts, first_row, start = dict.fromkeys(floats, 0), {}, 0
+    if floats:
+        for batch in TableSource(dataset, path, None, config.execution.batch_rows).batches(floats):
+            _count_infinite(batch, floats, start, counts, first_row)
+            start += batch.num_rows
+    _refuse_infinite(counts, first_row, path)
+    kind = task(table, config)
+    n_classes = 0 if kind == "regression" else len(pc.unique(table.column(config.input.label).combine_chunks()))
+    return InputSummary(kind, table.num_rows, n_classes, len(numeric) + len(categorical), len(categorical))
 
 
 def _hash_key(purpose: str, seed: int) -> str:
@@ -490,7 +534,11 @@ def load_table(config: Config) -> RowFrame:
     source = TableSource(dataset, path, None, ex.batch_rows)
     hashes, uniques, blocks, cat_cols = [], {name: set() for name in categorical}, [], {name: [] for name in categorical}
     feature_hashes = []
+    floats = [c for c in numeric if pa.types.is_floating(dataset.schema.field(c).type)]
+    inf_counts, inf_first, at = dict.fromkeys(floats, 0), {}, 0
     for batch in source.batches(used):
+        _count_infinite(batch, floats, at, inf_counts, inf_first)
+        at += batch.num_rows
         df = batch.to_pandas()
         hashes.append(_row_hashes(df))
         block = encode_columns(df, numeric, [], {})
@@ -504,6 +552,7 @@ def load_table(config: Config) -> RowFrame:
         if in_memory:
             blocks.append(block)
     release_memory()  # the pass's decoded row groups and batch frames
+    _refuse_infinite(inf_counts, inf_first, path)
     content = np.concatenate(hashes) if hashes else np.empty(0, np.uint64)
     schema = pa.schema([dataset.schema.field(c) for c in used])
     digest = hashlib.sha256(str(schema).encode())
