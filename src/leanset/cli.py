@@ -401,8 +401,13 @@ def main() -> None:
 
     A problem of the input or the environment (a ``LeansetError``, an ``OSError`` such as a full
     disk or a denied write, memory running out) is one line and exit 2; any other error is one
-    line naming a log file that holds its traceback, and exit 1.
+    line naming a log file that holds its traceback, and exit 1. Without ``--verbose``, Prefect logs
+    nothing below CRITICAL, so that a failed task's traceback reaches the log file, not the terminal.
     """
+    import sys
+
+    if "--verbose" not in sys.argv[1:]:
+        os.environ.setdefault("PREFECT_LOGGING_LEVEL", "CRITICAL")
     try:
         app()
     except LeansetError as exc:

@@ -90,7 +90,8 @@ def check_store(store: Path) -> None:
             break
         existing = existing.parent
     if not existing.is_dir():
-        raise StoreError(f"store: {existing} is a file, so the store {store} cannot be created under it; {fix}")
+        under = "" if existing == store else f", so the store {store} cannot be created under it"
+        raise StoreError(f"store: {existing} is a file, not a folder{under}; {fix}")
     probe_dir = store / "runs" if (store / "runs").is_dir() else existing
     try:
         fd, probe = tempfile.mkstemp(prefix=".leanset-probe-", dir=probe_dir)

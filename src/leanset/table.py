@@ -169,16 +169,24 @@ class RowView:
 
 
 def _dataset(path: Path) -> ds.Dataset:
+    """The table at ``path`` as an Arrow dataset, refused when it is missing, unreadable or empty."""
     if not path.exists():
         raise InputError(f"input.path: {path} not found; point input.path at a parquet file, a folder of parquet files or a CSV file")
     try:
         if path.is_file() and path.suffix.lower() in (".csv", ".tsv", ".txt"):
             parse = pacsv.ParseOptions(delimiter="\t" if path.suffix.lower() == ".tsv" else ",")
-            return ds.dataset(pacsv.read_csv(path, parse_options=parse))
-        return ds.dataset(path, format="parquet")
+            dataset = ds.dataset(pacsv.read_csv(path, parse_options=parse))
+        else:
+            dataset = ds.dataset(path, format="parquet")
+        if path.is_dir() and not dataset.files:
+            raise InputError(f"input.path: {path} is a folder without parquet files; put the table's files in it or point input.path at the table")
+        rows = dataset.count_rows()
     except (pa.ArrowInvalid, pa.ArrowTypeError, OSError) as exc:
         first = str(exc).splitlines()[0]
         raise InputError(f"{path}: cannot be read as parquet or CSV ({first}); check that the file is complete and in one of those formats") from None
+    if rows == 0:
+        raise InputError(f"{path}: the table has no rows; point input.path at a table that holds data")
+    return dataset
 
 
 def _unreadable(path: Path, exc: Exception) -> InputError:
@@ -195,6 +203,8 @@ def _read(dataset: ds.Dataset, path: Path, columns: list[str] | None = None) -> 
 def _feature_columns(schema: pa.Schema, config: Config, path: Path) -> tuple[list[str], list[str]]:
     """Return (numeric, categorical) feature names, refusing unsupported types."""
     inp = config.input
+    if inp.label not in schema.names:
+        raise InputError(f"{path}: label column '{inp.label}' not found (columns: {', '.join(schema.names[:20])}); fix input.label")
     skip = {inp.label, inp.id, *inp.exclude}
     names = inp.features if inp.features is not None else [n for n in schema.names if n not in skip]
     numeric, categorical = [], []
@@ -240,8 +250,6 @@ def _check_classes(label, config: Config, path: Path) -> None:
 
 def _check_label_and_id(table: pa.Table, config: Config, path: Path) -> None:
     inp = config.input
-    if table.num_rows == 0:
-        raise InputError(f"{path}: the table has no rows; point input.path at a table that holds data")
     if inp.label not in table.column_names:
         raise InputError(f"{path}: label column '{inp.label}' not found (columns: {', '.join(table.column_names[:20])}); fix input.label")
     label = table.column(inp.label)
