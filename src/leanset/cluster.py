@@ -55,7 +55,7 @@ from .table import RowFrame, encode_columns
 
 try:
     import dask.array as da
-    from distributed import Client, Future, LocalCluster, get_worker
+    from distributed import Client, Future, LocalCluster
     from lightgbm.dask import DaskLGBMRegressor
 except ImportError:
     raise ConfigError("execution.engine: dask needs the dask extra; pip install 'leanset[dask]' or set execution.engine local") from None
@@ -250,10 +250,9 @@ def fit_whole(frame: RowFrame, rows: np.ndarray | None, labels: np.ndarray, n_cl
 
     The training rows are read and binned as :func:`leanset.scores.score` bins them, then the fit
     runs on the rows ``rows`` (positions among the training rows; all when None) with ``labels``.
-    LightGBM gets the worker's thread count unless ``proxy.params`` sets ``num_threads``.
+    LightGBM gets the proxy's pinned thread count, as on the local engine.
     """
     pc = config.proxy
-    pc = pc.model_copy(update={"params": {"num_threads": get_worker().state.nthreads, **pc.params}})
     train = frame.train
     binned = binned_dataset(lambda: frame.feature_batches(train_only=True), len(train), frame.y[train], frame.categorical,
                             pc, config.seed, config.execution.batch_rows)
