@@ -104,7 +104,7 @@ class ExecutionConfig(_Section):
     engine: Literal["local", "dask"] = "local"
     address: str | None = None
     workers: int = Field(2, ge=1, le=64)
-    dask_fits: Literal["data_parallel", "fold_parallel"] = "data_parallel"
+    dask_fits: Literal["auto", "data_parallel", "fold_parallel"] = "auto"
     batch_rows: int = Field(65_536, ge=100)
     feature_memory_mb: float = Field(1024, ge=0)
 

@@ -540,7 +540,9 @@ def load_table(config: Config) -> RowFrame:
     n, n_features = head.num_rows, len(numeric) + len(categorical)
     in_memory = n * n_features * 4 <= ex.feature_memory_mb * 2**20
     source = TableSource(dataset, path, None, ex.batch_rows)
-    hashes, uniques, blocks, cat_cols = [], {name: set() for name in categorical}, [], {name: [] for name in categorical}
+    hashes, uniques, cat_cols = [], {name: set() for name in categorical}, {name: [] for name in categorical}
+    # numeric features are written into the matrix batch by batch: no list of blocks, no concatenated copy
+    X = np.empty((n, n_features), dtype=np.float32) if in_memory else None
     feature_hashes = []
     floats = [c for c in numeric if pa.types.is_floating(dataset.schema.field(c).type)]
     inf_counts, inf_first, at = dict.fromkeys(floats, 0), {}, 0
@@ -558,7 +560,7 @@ def load_table(config: Config) -> RowFrame:
             if in_memory:
                 cat_cols[name].append(cats[name])
         if in_memory:
-            blocks.append(block)
+            X[at - batch.num_rows:at, :len(numeric)] = block
     release_memory()  # the pass's decoded row groups and batch frames
     _refuse_infinite(inf_counts, inf_first, path)
     content = np.concatenate(hashes) if hashes else np.empty(0, np.uint64)
@@ -567,14 +569,9 @@ def load_table(config: Config) -> RowFrame:
     digest.update(content)
     fingerprint = digest.hexdigest()[:32]
     categories = {name: sorted(uniques[name]) for name in categorical}
-    X = None
-    if in_memory:
-        X = np.empty((n, n_features), dtype=np.float32)
-        X[:, :len(numeric)] = np.concatenate(blocks) if blocks else np.empty((0, len(numeric)), np.float32)
-        del blocks
-        if categorical:
-            cats = pd.DataFrame({name: pd.concat(cat_cols[name], ignore_index=True) for name in categorical})
-            X[:, len(numeric):] = encode_columns(cats, [], categorical, categories)
+    if in_memory and categorical:
+        cats = pd.DataFrame({name: pd.concat(cat_cols[name], ignore_index=True) for name in categorical})
+        X[:, len(numeric):] = encode_columns(cats, [], categorical, categories)
     if inp.id is None:
         ids = source.row_id = _derive_ids(content)
     else:
