@@ -23,7 +23,7 @@ import numpy as np
 
 from .config import Config, ProxyConfig, TargetConfig
 from .errors import ConfigError, StoreError
-from .table import InputSummary, check_input
+from .load.table import InputSummary, check_input
 
 #: Rows of the invented dataset the LightGBM parameters are tried on.
 _TINY_ROWS = 60
@@ -47,7 +47,7 @@ def preflight(config: Config) -> InputSummary:
     check_settings(config, summary)
     check_store(config.store)
     if config.execution.engine == "dask":
-        from .cluster import check_config
+        from .scores.cluster import check_config
 
         check_config(config)
     return summary
@@ -177,7 +177,7 @@ def check_proxy(config: ProxyConfig, summary: InputSummary, seed: int) -> None:
     ConfigError
         Naming the ``proxy.params`` key LightGBM refuses and its reason.
     """
-    from .proxy import gbdt_params
+    from .models.proxy import gbdt_params
 
     params = gbdt_params(summary.n_classes if summary.task != "regression" else 0, config, seed)
     _lightgbm_check("proxy.params", params, dict(config.params), config.rounds, summary, seed)
@@ -193,7 +193,7 @@ def check_target(config: TargetConfig, summary: InputSummary, seed: int) -> None
     ConfigError
         Naming ``target.estimator`` or the ``target.params`` key at fault, and the fix.
     """
-    from .verify import LIGHTGBM_DEFAULTS, LIGHTGBM_ROUNDS, _sklearn_estimator
+    from .models.target import LIGHTGBM_DEFAULTS, LIGHTGBM_ROUNDS, _sklearn_estimator
 
     n_classes = 0 if summary.task == "regression" else summary.n_classes
     if config.family == "lightgbm":
