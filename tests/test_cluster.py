@@ -53,9 +53,9 @@ def table(tmp_path_factory):
 
 @pytest.fixture(scope="module")
 def setup(table, tmp_path_factory):
-    """Config (dask engine, partitions of at most 100 rows) and frame of the breast_cancer table."""
+    """Config (dask engine, ``data_parallel`` fits, partitions of at most 100 rows) and frame of the breast_cancer table."""
     tmp = tmp_path_factory.mktemp("cfg")
-    path = write_config(tmp, table, execution__engine="dask", execution__batch_rows=100)
+    path = write_config(tmp, table, execution__engine="dask", execution__batch_rows=100, execution__dask_fits="data_parallel")
     config = load_config(path)
     return path, config, load_table(config)
 
@@ -139,7 +139,8 @@ def test_dask_scores_agree_with_single_machine(setup, client, dask_scores):
     got = dask_scores
     assert list(got.table.columns) == list(local.table.columns)
     assert len(got.table) == len(local.table) == len(frame.train)
-    assert got.info.keys() == local.info.keys() and got.info["repeats"] == 1
+    assert got.info.keys() - {"dask_fits"} == local.info.keys() and got.info["repeats"] == 1
+    assert got.info["dask_fits"]["chosen"] == "data_parallel"
     assert got.table["suspect_label"].dtype == "boolean" and got.table["suspect_label"].notna().all()
     assert len(got.proxies) == config.proxy.folds and got.checkpoints == local.checkpoints
 
@@ -231,3 +232,27 @@ def test_fold_parallel_fits_are_the_single_machine_models(setup, client):
     assert got.info["label_errors"]["cutoffs"] == pytest.approx(local.info["label_errors"]["cutoffs"], abs=1e-9)
     assert got.table["suspect_label"].equals(local.table["suspect_label"])
     assert metrics.jaccard_score(select_frame(frame, local, config).keep, select_frame(frame, got, config).keep) == 1.0
+
+
+def test_default_fits_give_the_local_decisions(setup, client):
+    """``execution.dask_fits`` left at ``auto`` on a two-worker local cluster whose workers can hold a
+    whole fit: ``fold_parallel`` is chosen, and the kept set is the local run's (Jaccard 1,
+    ``sklearn.metrics.jaccard_score``). With a worker memory limit below twice a fit's bytes the rule
+    picks ``data_parallel``."""
+    _, config, frame = setup
+    config = config.model_copy(update={"execution": config.execution.model_copy(update={"dask_fits": "auto"})})
+    assert ExecutionConfig().dask_fits == "auto"  # the default
+    got = cluster.score(frame, config, client)
+    assert got.info["dask_fits"]["chosen"] == "fold_parallel"
+    local = scores.score(frame, config)
+    assert metrics.jaccard_score(select_frame(frame, local, config).keep, select_frame(frame, got, config).keep) == 1.0
+    need = cluster.fit_bytes(len(frame.train), len(frame.feature_names), len(frame.classes))
+    assert need == len(frame.train) * (len(frame.feature_names) + 32)  # 2 classes: 16 bytes each
+
+    class Small:
+        def scheduler_info(self, n_workers):
+            return {"workers": {"a": {"memory_limit": 2 * need - 1}, "b": {"memory_limit": 0}}}
+
+    assert cluster.choose_fits(Small(), len(frame.train), len(frame.feature_names), 2, "auto")["chosen"] == "data_parallel"
+    assert cluster.choose_fits(Small(), 10, 1, 2, "auto")["chosen"] == "fold_parallel"
+    assert cluster.choose_fits(Small(), 10, 1, 2, "data_parallel")["chosen"] == "data_parallel"

@@ -162,9 +162,11 @@ class ExecutionConfig(_Section):
         "`workers` processes is started and closed."))
     workers: int = Field(2, ge=1, le=64, description=(
         "`dask`: processes of the local cluster started when `address` is unset."))
-    dask_fits: Literal["data_parallel", "fold_parallel"] = Field("data_parallel", description=(
+    dask_fits: Literal["auto", "data_parallel", "fold_parallel"] = Field("auto", description=(
         "`dask`: `data_parallel` trains each proxy with `lightgbm.dask` over all workers; `fold_parallel` trains "
-        "each proxy whole on one worker, so the decisions equal a local run's."))
+        "each proxy whole on one worker, so the decisions equal a local run's; `auto` picks `fold_parallel` when "
+        "a whole fit (about training rows x (features + 16 x classes) bytes) fits in half the smallest worker's "
+        "memory limit, else `data_parallel`."))
     batch_rows: int = Field(65_536, ge=100, description=(
         "Rows per record batch when the table is read, binned, scored and written."))
     feature_memory_mb: float = Field(1024, ge=0, description=(

@@ -22,6 +22,7 @@ from prefect.context import FlowRunContext  # noqa: E402
 
 from .config import Config, load_config  # noqa: E402
 from .verify.frontier import FractionEvaluator, frontier_files, search_fraction, sweep  # noqa: E402
+from .preflight import preflight  # noqa: E402
 from .scores.dynamics import Scores, agreement, score  # noqa: E402
 from .select.rules import Selection, select_frame, stabilise  # noqa: E402
 from .store.publish import ParentRun, read_parent, store_lock, write_run  # noqa: E402
@@ -106,6 +107,7 @@ def _pipeline(config_path: str, overrides: dict[str, Any] | None, wait: float, f
     """The run's outline. The store lock is held from start to end, so the parent run read here is
     still the last run when this one is published; a second run waits up to ``wait`` seconds, then stops."""
     config = load_config(config_path, overrides)
+    preflight(config)  # everything checkable, before the lock is taken or any fit starts
     timings: dict[str, float] = {}
 
     def timed(name, fn, *args):

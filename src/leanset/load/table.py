@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import hashlib
 from pathlib import Path
+from typing import NamedTuple
 
 import numpy as np
 import pandas as pd
@@ -28,16 +29,24 @@ RESERVED = ("weight",)
 
 
 def _dataset(path: Path) -> ds.Dataset:
+    """The table at ``path`` as an Arrow dataset, refused when it is missing, unreadable or empty."""
     if not path.exists():
         raise InputError(f"input.path: {path} not found; point input.path at a parquet file, a folder of parquet files or a CSV file")
     try:
         if path.is_file() and path.suffix.lower() in (".csv", ".tsv", ".txt"):
             parse = pacsv.ParseOptions(delimiter="\t" if path.suffix.lower() == ".tsv" else ",")
-            return ds.dataset(pacsv.read_csv(path, parse_options=parse))
-        return ds.dataset(path, format="parquet")
+            dataset = ds.dataset(pacsv.read_csv(path, parse_options=parse))
+        else:
+            dataset = ds.dataset(path, format="parquet")
+        if path.is_dir() and not dataset.files:
+            raise InputError(f"input.path: {path} is a folder without parquet files; put the table's files in it or point input.path at the table")
+        rows = dataset.count_rows()
     except (pa.ArrowInvalid, pa.ArrowTypeError, OSError) as exc:
         first = str(exc).splitlines()[0]
         raise InputError(f"{path}: cannot be read as parquet or CSV ({first}); check that the file is complete and in one of those formats") from None
+    if rows == 0:
+        raise InputError(f"{path}: the table has no rows; point input.path at a table that holds data")
+    return dataset
 
 
 def _unreadable(path: Path, exc: Exception) -> InputError:
@@ -54,6 +63,8 @@ def _read(dataset: ds.Dataset, path: Path, columns: list[str] | None = None) -> 
 def _feature_columns(schema: pa.Schema, config: Config, path: Path) -> tuple[list[str], list[str]]:
     """Return (numeric, categorical) feature names, refusing unsupported types."""
     inp = config.input
+    if inp.label not in schema.names:
+        raise InputError(f"{path}: label column '{inp.label}' not found (columns: {', '.join(schema.names[:20])}); fix input.label")
     skip = {inp.label, inp.id, *inp.exclude}
     names = inp.features if inp.features is not None else [n for n in schema.names if n not in skip]
     numeric, categorical = [], []
@@ -160,8 +171,39 @@ def label_bins(y: np.ndarray, bins: int = LABEL_BINS) -> np.ndarray:
     return np.minimum(((ranks - 1) * bins / len(y)).astype(np.int32), bins - 1)
 
 
-def check_input(config: Config) -> None:
-    """Check the table against the config by reading its schema, label and id columns only.
+class InputSummary(NamedTuple):
+    """What :func:`check_input` learned of the table: enough to check the models' settings."""
+
+    task: str
+    rows: int
+    n_classes: int
+    n_features: int
+    n_categorical: int
+
+
+def _refuse_infinite(counts: dict[str, int], first_row: dict[str, int], path: Path) -> None:
+    """Refuse infinite feature values, naming the first column that holds them and its count."""
+    bad = [name for name, k in counts.items() if k]
+    if bad:
+        name = bad[0]
+        more = f" (and {len(bad) - 1} more columns)" if len(bad) > 1 else ""
+        raise InputError(f"{path}: feature column '{name}' holds {counts[name]} infinite values, the first in row {first_row[name]}{more}; "
+                         f"replace them with NaN (read as missing) or finite numbers, or add '{name}' to input.exclude")
+
+
+def _count_infinite(batch, names: list[str], start: int, counts: dict[str, int], first_row: dict[str, int]) -> None:
+    """Add the infinite values of the float columns ``names`` of ``batch`` (rows from ``start``) to ``counts``."""
+    for name in names:
+        inf = pc.is_inf(batch.column(name))
+        k = pc.sum(inf).as_py() or 0
+        if k and not counts[name]:
+            first_row[name] = start + int(np.flatnonzero(inf.to_numpy(zero_copy_only=False))[0])
+        counts[name] += k
+
+
+def check_input(config: Config) -> InputSummary:
+    """Check the table against the config: its schema, label and id columns, and one pass over its
+    float feature columns for infinite values (NaN is read as missing; infinity is refused).
 
     Raises
     ------
@@ -170,10 +212,20 @@ def check_input(config: Config) -> None:
     """
     path = config.input.path
     dataset = _dataset(path)
-    _feature_columns(dataset.schema, config, path)
+    numeric, categorical = _feature_columns(dataset.schema, config, path)
     cols = [c for c in (config.input.label, config.input.id, *RESERVED) if c is not None and c in dataset.schema.names]
     table = _read(dataset, path, cols)
     _check_label_and_id(table, config, path)
+    floats = [n for n in numeric if pa.types.is_floating(dataset.schema.field(n).type)]
+    counts, first_row, start = dict.fromkeys(floats, 0), {}, 0
+    if floats:
+        for batch in TableSource(dataset, path, None, config.execution.batch_rows).batches(floats):
+            _count_infinite(batch, floats, start, counts, first_row)
+            start += batch.num_rows
+    _refuse_infinite(counts, first_row, path)
+    kind = task(table, config)
+    n_classes = 0 if kind == "regression" else len(pc.unique(table.column(config.input.label).combine_chunks()))
+    return InputSummary(kind, table.num_rows, n_classes, len(numeric) + len(categorical), len(categorical))
 
 
 def _segment_codes(table: pa.Table, names: list[str], path: Path) -> np.ndarray | None:
@@ -281,9 +333,15 @@ def load_table(config: Config) -> RowFrame:
     n, n_features = head.num_rows, len(numeric) + len(categorical)
     in_memory = n * n_features * 4 <= ex.feature_memory_mb * 2**20
     source = TableSource(dataset, path, None, ex.batch_rows)
-    hashes, uniques, blocks, cat_cols = [], {name: set() for name in categorical}, [], {name: [] for name in categorical}
+    hashes, uniques, cat_cols = [], {name: set() for name in categorical}, {name: [] for name in categorical}
+    # numeric features are written into the matrix batch by batch: no list of blocks, no concatenated copy
+    X = np.empty((n, n_features), dtype=np.float32) if in_memory else None
     feature_hashes = []
+    floats = [c for c in numeric if pa.types.is_floating(dataset.schema.field(c).type)]
+    inf_counts, inf_first, at = dict.fromkeys(floats, 0), {}, 0
     for batch in source.batches(used):
+        _count_infinite(batch, floats, at, inf_counts, inf_first)
+        at += batch.num_rows
         df = batch.to_pandas()
         hashes.append(_row_hashes(df))
         block = encode_columns(df, numeric, [], {})
@@ -295,22 +353,18 @@ def load_table(config: Config) -> RowFrame:
             if in_memory:
                 cat_cols[name].append(cats[name])
         if in_memory:
-            blocks.append(block)
+            X[at - batch.num_rows:at, :len(numeric)] = block
     release_memory()  # the pass's decoded row groups and batch frames
+    _refuse_infinite(inf_counts, inf_first, path)
     content = np.concatenate(hashes) if hashes else np.empty(0, np.uint64)
     schema = pa.schema([dataset.schema.field(c) for c in used])
     digest = hashlib.sha256(str(schema).encode())
     digest.update(content)
     fingerprint = digest.hexdigest()[:32]
     categories = {name: sorted(uniques[name]) for name in categorical}
-    X = None
-    if in_memory:
-        X = np.empty((n, n_features), dtype=np.float32)
-        X[:, :len(numeric)] = np.concatenate(blocks) if blocks else np.empty((0, len(numeric)), np.float32)
-        del blocks
-        if categorical:
-            cats = pd.DataFrame({name: pd.concat(cat_cols[name], ignore_index=True) for name in categorical})
-            X[:, len(numeric):] = encode_columns(cats, [], categorical, categories)
+    if in_memory and categorical:
+        cats = pd.DataFrame({name: pd.concat(cat_cols[name], ignore_index=True) for name in categorical})
+        X[:, len(numeric):] = encode_columns(cats, [], categorical, categories)
     if inp.id is None:
         ids = source.row_id = _derive_ids(content)
     else:

@@ -30,9 +30,11 @@ from ..load.memory import release_memory
 Checkpoint = Callable[[int, np.ndarray], None]
 _EPS = 1e-300
 
+#: ``num_threads`` is pinned so that a run does not depend on the machine's core count or on
+#: ``OMP_NUM_THREADS``; ``proxy.params`` may raise it (docs/reliability.md).
 GBDT_DEFAULTS: dict[str, Any] = {
     "learning_rate": 0.1, "num_leaves": 15, "min_data_in_leaf": 20,
-    "verbose": -1, "deterministic": True, "force_col_wise": True,
+    "verbose": -1, "deterministic": True, "force_col_wise": True, "num_threads": 1,
 }
 
 

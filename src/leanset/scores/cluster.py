@@ -16,7 +16,9 @@ from the same pass. Repeats and the AUM threshold samples run as in :func:`leans
 
 How a proxy is fitted is ``execution.dask_fits``:
 
-- ``data_parallel`` (default): each fit is one ``lightgbm.dask`` fit over all workers, each holding
+- ``auto`` (default): ``fold_parallel`` when every worker can hold one whole fit (see
+  :func:`choose_fits`), else ``data_parallel``; the choice is recorded in ``scores.info["dask_fits"]``.
+- ``data_parallel``: each fit is one ``lightgbm.dask`` fit over all workers, each holding
   its own partitions; no worker needs the whole table. Partitions sit on fixed workers (partition
   i on the i-th worker, round robin) and LightGBM ranks the workers in partition order, so
   repeated runs on a cluster of the same size give the same models. The trees differ from the
@@ -55,7 +57,7 @@ from ..load.rows import RowFrame, encode_columns
 
 try:
     import dask.array as da
-    from distributed import Client, Future, LocalCluster, get_worker
+    from distributed import Client, Future, LocalCluster
     from lightgbm.dask import DaskLGBMRegressor
 except ImportError:
     raise ConfigError("execution.engine: dask needs the dask extra; pip install 'leanset[dask]' or set execution.engine local") from None
@@ -250,10 +252,9 @@ def fit_whole(frame: RowFrame, rows: np.ndarray | None, labels: np.ndarray, n_cl
 
     The training rows are read and binned as :func:`leanset.scores.dynamics.score` bins them, then the fit
     runs on the rows ``rows`` (positions among the training rows; all when None) with ``labels``.
-    LightGBM gets the worker's thread count unless ``proxy.params`` sets ``num_threads``.
+    LightGBM gets the proxy's pinned thread count, as on the local engine.
     """
     pc = config.proxy
-    pc = pc.model_copy(update={"params": {"num_threads": get_worker().state.nthreads, **pc.params}})
     train = frame.train
     binned = binned_dataset(lambda: frame.feature_batches(train_only=True), len(train), frame.y[train], frame.categorical,
                             pc, config.seed, config.execution.batch_rows)
@@ -262,12 +263,46 @@ def fit_whole(frame: RowFrame, rows: np.ndarray | None, labels: np.ndarray, n_cl
     return model.model.model_to_string()
 
 
+#: Share of a worker's memory limit one whole fit may take under ``dask_fits: auto`` (the rest is
+#: for the worker's shards of the table, the replay of the checkpoints and Dask itself); common
+#: practice, no source.
+FIT_SHARE = 0.5
+
+
+def fit_bytes(n_rows: int, n_features: int, n_classes: int) -> int:
+    """Bytes one whole proxy fit holds on a worker: the binned training rows (one byte per feature
+    and row, LightGBM's bins fit in a byte at its default ``max_bin`` 255) and LightGBM's per-row
+    buffers (a float64 score, a float32 gradient and a float32 hessian per row and class)."""
+    return n_rows * (n_features + 16 * max(n_classes, 1))
+
+
+def choose_fits(client: Client, n_rows: int, n_features: int, n_classes: int, setting: str) -> dict[str, Any]:
+    """How the proxies are fitted: ``setting`` unless it is ``auto``; then ``fold_parallel`` when
+    :func:`fit_bytes` is at most ``FIT_SHARE`` of the smallest worker memory limit (a worker
+    without a limit can hold it), else ``data_parallel``.
+
+    Returns
+    -------
+    dict
+        ``chosen``, ``setting``, ``fit_bytes`` and ``worker_memory_limit`` (bytes; None when unlimited).
+    """
+    need = fit_bytes(n_rows, n_features, n_classes)
+    limits = [w.get("memory_limit") or 0 for w in client.scheduler_info(n_workers=-1)["workers"].values()]
+    limit = min((m for m in limits if m), default=None)
+    chosen = setting
+    if setting == "auto":
+        chosen = "fold_parallel" if limit is None or need <= FIT_SHARE * limit else "data_parallel"
+    return {"chosen": chosen, "setting": setting, "fit_bytes": need, "worker_memory_limit": limit}
+
+
 class Fitter:
-    """Fits the gbdt proxies of one score stage the way ``execution.dask_fits`` asks."""
+    """Fits the gbdt proxies of one score stage the way ``execution.dask_fits`` asks (:func:`choose_fits`)."""
 
     def __init__(self, shards: Shards, frame: RowFrame, config: Config):
         self.shards, self.config, self.categorical = shards, config, frame.categorical
-        self.whole = config.execution.dask_fits == "fold_parallel"
+        self.choice = choose_fits(shards.client, len(frame.train), len(frame.feature_names), len(frame.classes),
+                                  config.execution.dask_fits)
+        self.whole = self.choice["chosen"] == "fold_parallel"
         # the per-row arrays only: workers read the features themselves
         self.frame = shards.broadcast(replace(frame, X=None)) if self.whole else None
 
@@ -389,7 +424,7 @@ def _score(frame: RowFrame, config: Config, client: Client) -> Scores:
         proxies = proxies or [FittedProxy("gbdt", b) for b in boosters]
     table = pd.DataFrame({name: np.mean([o[name] for o in runs], axis=0) for name in SCORE_NAMES})
     table["never_learned"] = np.logical_and.reduce([o["never_learned"] for o in runs])
-    info: dict = {"repeats": pc.repeats, "stability": stability(runs) if pc.repeats > 1 else None}
+    info: dict = {"repeats": pc.repeats, "stability": stability(runs) if pc.repeats > 1 else None, "dask_fits": fitter.choice}
     suspect = pd.array(np.full(len(y), pd.NA), dtype="boolean")
     if pc.threshold_samples and n_classes:
         t0 = time.perf_counter()
