@@ -74,8 +74,9 @@ def test_bad_regression_input_is_refused(tmp_path):
                                           "verify": {"metric": "accuracy"}}))
     d["c"] = np.arange(60) % 2
     d.to_parquet(tmp_path / "t.parquet")
+    # with input.task auto a regression metric means regression; classes stated outright refuse it
     with pytest.raises(ConfigError, match="verify.metric: rmse is a regression metric"):
-        load_table(Config.model_validate({"input": {"path": str(tmp_path / "t.parquet"), "label": "c"},
+        load_table(Config.model_validate({"input": {"path": str(tmp_path / "t.parquet"), "label": "c", "task": "classification"},
                                           "verify": {"metric": "rmse"}}))
     with pytest.raises(ConfigError, match="selection.score: confidence"):
         load_table(Config.model_validate({"input": {"path": str(tmp_path / "t.parquet"), "label": "y"},

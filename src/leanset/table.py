@@ -167,7 +167,9 @@ class RowView:
                 yield int(lo), X[self.rows[lo:hi] - start]
 
 
-def _dataset(path: Path) -> ds.Dataset:
+def _dataset(path: Path, table: pa.Table | None = None) -> ds.Dataset:
+    if table is not None:
+        return ds.dataset(table)
     if not path.exists():
         raise InputError(f"input.path: {path} not found; point input.path at a parquet file, a folder of parquet files or a CSV file")
     try:
@@ -267,15 +269,44 @@ def _check_label_and_id(table: pa.Table, config: Config, path: Path) -> None:
 LABEL_BINS = 10
 
 
+#: Most distinct values a label of whole numbers may hold to be taken as classes when ``input.task``
+#: is ``auto``; above it the task is ambiguous and the label is refused (common practice, no source:
+#: a class label with more values than this is more often a count or a measurement).
+MAX_AUTO_CLASSES = 50
+
+
 def task(table: pa.Table, config: Config) -> str:
-    """``input.task``, or when ``auto``: regression for a float label holding non-integer values."""
-    if config.input.task != "auto":
-        return config.input.task
-    label = table.column(config.input.label)
-    if not pa.types.is_floating(label.type):
+    """The task of the table's label: ``input.task`` when set, else inferred.
+
+    With ``input.task: auto``, a regression metric (``verify.metric`` rmse, mae or r2) means
+    regression; a float label holding non-integer values means regression; strings, booleans and
+    whole numbers (integers, or floats holding whole numbers) with at most :data:`MAX_AUTO_CLASSES`
+    distinct values mean classification.
+
+    Raises
+    ------
+    ConfigError
+        When a label of whole numbers holds more than :data:`MAX_AUTO_CLASSES` distinct values:
+        the config must say which task it means.
+    """
+    inp = config.input
+    if inp.task != "auto":
+        return inp.task
+    if config.verify.metric in REGRESSION_METRICS:
+        return "regression"
+    label = table.column(inp.label)
+    t = label.type
+    if not (pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t)):
         return "classification"
-    vals = label.to_numpy()
-    return "regression" if np.any(np.isfinite(vals) & (vals != np.round(vals))) else "classification"
+    vals = label.to_numpy().astype(np.float64) if not pa.types.is_decimal(t) else label.cast(pa.float64()).to_numpy()
+    if np.any(np.isfinite(vals) & (vals != np.round(vals))):
+        return "regression"
+    distinct = len(pc.unique(label.combine_chunks()))
+    if distinct > MAX_AUTO_CLASSES:
+        raise ConfigError(f"input.label: '{inp.label}' holds {distinct} distinct whole numbers (more than {MAX_AUTO_CLASSES} "
+                          "for classes by default); set input.task: regression and verify.metric: rmse to predict it as a number, "
+                          "or input.task: classification to keep each value as a class")
+    return "classification"
 
 
 def _check_continuous_label(label, config: Config, path: Path) -> None:
@@ -300,8 +331,10 @@ def label_bins(y: np.ndarray, bins: int = LABEL_BINS) -> np.ndarray:
     return np.minimum(((ranks - 1) * bins / len(y)).astype(np.int32), bins - 1)
 
 
-def check_input(config: Config) -> None:
+def check_input(config: Config, table: pa.Table | None = None) -> None:
     """Check the table against the config by reading its schema, label and id columns only.
+
+    ``table``, when given, is an Arrow table in memory that stands in for ``input.path``.
 
     Raises
     ------
@@ -309,7 +342,7 @@ def check_input(config: Config) -> None:
         Naming the file, column or value at fault, and the fix.
     """
     path = config.input.path
-    dataset = _dataset(path)
+    dataset = _dataset(path, table)
     _feature_columns(dataset.schema, config, path)
     cols = [c for c in (config.input.label, config.input.id, *RESERVED) if c is not None and c in dataset.schema.names]
     table = _read(dataset, path, cols)
@@ -354,7 +387,7 @@ def _split(row_id: np.ndarray, y: np.ndarray, fraction: float, folds: int, seed:
     starts = np.concatenate(([0], np.cumsum(counts)[:-1]))
     rank = np.empty(len(y), dtype=np.int64)
     rank[order] = np.arange(len(y)) - np.repeat(starts, counts)
-    n_hold = np.maximum(1, np.round(fraction * counts).astype(np.int64))
+    n_hold = np.maximum(1 if fraction > 0 else 0, np.round(fraction * counts).astype(np.int64))
     holdout = rank < n_hold[y]
     fold = ((rank - n_hold[y]) % folds).astype(np.int8)
     fold[holdout] = -1
@@ -464,8 +497,12 @@ class TableSource:
             raise _unreadable(self.path, exc) from None
 
 
-def load_table(config: Config) -> RowFrame:
+def load_table(config: Config, table: pa.Table | None = None, holdout: bool = True) -> RowFrame:
     """Read and check the configured table in record batches and turn it into a :class:`RowFrame`.
+
+    ``table``, when given, is an Arrow table in memory read in place of ``input.path`` (the same
+    rows give the same frame either way). With ``holdout`` False no row is held out and every row
+    is a training row in one of the proxy folds.
 
     Row ids, the fingerprint, the holdout and the folds do not depend on ``execution.batch_rows``.
     The float32 feature matrix is held in memory when it fits in ``execution.feature_memory_mb``;
@@ -478,7 +515,7 @@ def load_table(config: Config) -> RowFrame:
     """
     path = config.input.path
     inp, ex = config.input, config.execution
-    dataset = _dataset(path)
+    dataset = _dataset(path, table)
     numeric, categorical = _feature_columns(dataset.schema, config, path)
     head_cols = [c for c in (inp.label, inp.id, *RESERVED, *inp.segments) if c is not None and c in dataset.schema.names]
     head = _read(dataset, path, list(dict.fromkeys(head_cols)))
@@ -536,7 +573,8 @@ def load_table(config: Config) -> RowFrame:
         y = pd.Categorical(label, categories=classes).codes.astype(np.int32)
         bins = None
 
-    holdout, fold = _split(row_id, y if bins is None else bins, config.holdout.fraction, config.proxy.folds, config.seed)
+    holdout, fold = _split(row_id, y if bins is None else bins, config.holdout.fraction if holdout else 0.0,
+                           config.proxy.folds, config.seed)
     release_memory()
     return RowFrame(
         row_id=row_id, y=y, classes=classes, X=X,
