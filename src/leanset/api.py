@@ -52,9 +52,13 @@ def to_arrow(data: Any, what: str = "X") -> pa.Table:
     if hasattr(data, "toarray") or hasattr(data, "tocsr"):
         raise PrunerInputError(f"{what} is a sparse matrix; leanset needs dense features (call .toarray() if it fits in memory)")
     arr = np.asarray(data)
+    if arr.dtype.kind == "c":
+        raise PrunerInputError(f"{what}: Complex data not supported; give real-valued features")
     if arr.ndim != 2:
         raise PrunerInputError(f"{what} must be 2-D (rows × features), got an array of shape {arr.shape}; "
                                "reshape a single feature with X.reshape(-1, 1)")
+    if arr.shape[1] == 0:
+        raise PrunerInputError(f"{what} has 0 feature(s) (shape={arr.shape}) while a minimum of 1 is required.")
     return pa.table({f"x{j}": arr[:, j] for j in range(arr.shape[1])})
 
 
@@ -169,11 +173,13 @@ class RowPruner(BaseEstimator):
         from .select import select_frame
         from .table import load_table
 
+        if y is None:
+            raise PrunerInputError("RowPruner requires y to be passed, but the target y is None")
         table = to_arrow(X)
         if table.num_columns == 0:
-            raise PrunerInputError("X has no feature columns")
-        if table.num_rows == 0:
-            raise PrunerInputError("X has 0 samples; pruning needs rows")
+            raise PrunerInputError(f"X has 0 feature(s) (shape=({table.num_rows}, 0)) while a minimum of 1 is required.")
+        if table.num_rows < 2:
+            raise PrunerInputError(f"X has {table.num_rows} sample(s); pruning needs rows of at least two classes")
         label = _column(y, "y")
         if len(label) != table.num_rows:
             raise PrunerInputError(f"X has {table.num_rows} rows but y has {len(label)} values")
@@ -186,6 +192,8 @@ class RowPruner(BaseEstimator):
         weight = None if sample_weight is None else np.asarray(sample_weight, dtype=np.float64).ravel()
         if weight is not None and len(weight) != table.num_rows:
             raise PrunerInputError(f"sample_weight has {len(weight)} values for {table.num_rows} rows")
+        if weight is not None and (np.any(weight < 0) or not np.any(weight > 0)):
+            raise PrunerInputError("sample_weight must be non-negative and not all zero")
         config = self._config([_GROUPS] if groups is not None else [])
         if groups is not None:
             config = config.model_copy(update={"input": config.input.model_copy(update={"exclude": [_GROUPS]})})
