@@ -89,10 +89,12 @@ def _score(frame: RowFrame, config: Config, use_cache: bool) -> tuple[Scores, bo
 
 @task(name="score", cache_policy=NO_CACHE)
 @_stage("score")
-def score_task(frame: RowFrame, config: Config, use_cache: bool = True) -> Scores:
+def score_task(frame: RowFrame, config: Config, use_cache: bool = True) -> State:
+    """The scores, in a Completed state; named Cached, as Prefect names a cached task run's state,
+    when they came from the store's cache."""
     scores, hit = _score(frame, config, use_cache)
-    # a cache hit ends as Prefect's own Cached state, as a task whose result Prefect cached would
-    return Completed(name="Cached", data=scores, message="scores read from the store's cache") if hit else scores
+    return Completed(name="Cached" if hit else "Completed", data=scores,
+                     message="scores read from the store's cache" if hit else None)
 
 
 @task(name="agreement", cache_policy=NO_CACHE)
@@ -158,13 +160,18 @@ def write_task(frame, scores, selection, verdict, config, parent, extra, files) 
                          extra=extra, files=files))
 
 
+def _score_in_flow(frame: RowFrame, config: Config, use_cache: bool = True) -> Scores:
+    # a task that returns a state hands back that state, Cached or not; its result is the scores
+    return score_task(frame, config, use_cache, return_state=True).result()
+
+
 #: The stages as Prefect tasks (inside a flow) ...
-TASKS = SimpleNamespace(load=load_task, parent=parent_task, score=score_task, agreement=agreement_task,
+TASKS = SimpleNamespace(load=load_task, parent=parent_task, score=_score_in_flow, agreement=agreement_task,
                         fit_full=full_fit_task, search=search_task, select=select_task, stabilise=stabilise_task,
                         verify=verify_task, frontier=frontier_task, write=write_task)
 #: ... and as the plain functions they call, for a run without Prefect (``leanset.prune``).
 PLAIN = SimpleNamespace(**{name: t.fn for name, t in vars(TASKS).items() if name != "score"},
-                        score=_stage("score")(lambda frame, config, use_cache=True: _score(frame, config, use_cache)[0]))
+                        score=lambda frame, config, use_cache=True: score_task.fn(frame, config, use_cache).data)
 
 
 def run_stages(config: Config, stages: SimpleNamespace = TASKS, wait: float = 0.0, frontier: bool = False,
