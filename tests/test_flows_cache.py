@@ -50,6 +50,23 @@ def _artifact_keys(flow_run_id) -> set[str]:
     return asyncio.run(read())
 
 
+def _logs(flow_run_id) -> list[tuple[str, bool]]:
+    """The messages Prefect's API holds for a flow run, each with whether a task run logged it."""
+    import asyncio
+
+    from prefect.client.schemas.filters import LogFilter, LogFilterFlowRunId
+    from prefect.logging.handlers import APILogWorker
+
+    APILogWorker.drain_all()
+
+    async def read():
+        async with get_client() as client:
+            logs = await client.read_logs(log_filter=LogFilter(flow_run_id=LogFilterFlowRunId(any_=[flow_run_id])))
+            return [(log.message, log.task_run_id is not None) for log in logs]
+
+    return asyncio.run(read())
+
+
 def _run(cfg, **overrides):
     state = prune_flow(load_config(cfg, overrides or None), return_state=True)
     return state, Path(state.result(raise_on_failure=False))
@@ -66,6 +83,11 @@ def test_second_run_reads_the_scores_from_the_cache_and_a_proxy_change_rescores(
     pd.testing.assert_frame_equal(a, b)  # identical scores and decisions
     # every flow run publishes its artifacts
     assert {"leanset-summary", "leanset-reasons", "leanset-report"} <= _artifact_keys(second.state_details.flow_run_id)
+    # the stages' standard-library log records reach Prefect, attached to their task runs
+    first_logs, second_logs = _logs(first.state_details.flow_run_id), _logs(second.state_details.flow_run_id)
+    assert any(m.startswith("load: 600 rows") and by_task for m, by_task in first_logs), first_logs
+    assert any(m.startswith("score: 480 training rows") and by_task for m, by_task in first_logs), first_logs
+    assert any(m.startswith("score stage: cache hit") and by_task for m, by_task in second_logs), second_logs
 
     # another fraction reuses the scores ...
     _, dir3 = _run(cfg, **{"selection.fraction": 0.2})

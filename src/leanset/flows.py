@@ -116,11 +116,14 @@ def verify_task(frame: RowFrame, selection: Selection, config: Config, evaluator
     # the evaluator of a searched fraction already holds both feature sets
     X, X_hold = ((evaluator.X, evaluator.X_hold) if evaluator is not None
                  else (frame.feature_rows(train), frame.features(np.flatnonzero(hold))))
-    return verify(X, frame.y[train], selection.keep, selection.weight,
-                  X_hold, frame.y[hold], frame.classes, frame.categorical,
-                  config.target, config.verify, config.seed,
-                  None if frame.segments is None else frame.segments[hold], frame.segment_names,
-                  full=None if evaluator is None else (evaluator.full_model_, evaluator.full_seconds_))
+    verdict = verify(X, frame.y[train], selection.keep, selection.weight,
+                     X_hold, frame.y[hold], frame.classes, frame.categorical,
+                     config.target, config.verify, config.seed,
+                     None if frame.segments is None else frame.segments[hold], frame.segment_names,
+                     full=None if evaluator is None else (evaluator.full_model_, evaluator.full_seconds_))
+    logger.info("verify: %s, delta %s %+.4f, interval [%+.4f, %+.4f], tolerance %s", verdict.status, verdict.metric,
+                verdict.delta, *verdict.ci, verdict.tolerance)
+    return verdict
 
 
 @task(name="fit-full", cache_policy=NO_CACHE)

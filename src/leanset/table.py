@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import ctypes
 import hashlib
+import logging
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -21,6 +22,8 @@ import pyarrow.parquet as pq
 
 from .config import REGRESSION_METRICS, Config
 from .errors import ConfigError, InputError
+
+logger = logging.getLogger(__name__)
 
 #: Columns leanset adds to its outputs; an input column of the same name would be shadowed.
 RESERVED = ("weight",)
@@ -573,6 +576,8 @@ def load_table(config: Config, table: pa.Table | None = None, holdout: bool = Tr
         y = pd.Categorical(label, categories=classes).codes.astype(np.int32)
         bins = None
 
+    logger.info("load: %d rows, %d features (%d categorical), %s task, features %s", n, n_features, len(categorical),
+                kind, "in memory" if in_memory else "read in batches")
     holdout, fold = _split(row_id, y if bins is None else bins, config.holdout.fraction if holdout else 0.0,
                            config.proxy.folds, config.seed)
     release_memory()
