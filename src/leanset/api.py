@@ -169,9 +169,9 @@ class RowPruner(BaseEstimator):
         -------
         self
         """
-        from .scores import score
-        from .select import select_frame
-        from .table import load_table
+        from .load.table import load_table
+        from .scores.dynamics import score
+        from .select.rules import select_frame
 
         if y is None:
             raise PrunerInputError("RowPruner requires y to be passed, but the target y is None")
@@ -312,7 +312,7 @@ def prune(data: Any, label: str | None = None, config: str | Path | dict | Confi
         Bad config or table, before anything is written.
     """
     from .flows import PLAIN, run_stages
-    from .table import check_input
+    from .load.table import check_input
 
     table = None if isinstance(data, (str, Path)) else to_arrow(data, "data")
     dotted = {**_overrides(overrides), "input.label": label,

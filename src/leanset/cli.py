@@ -115,13 +115,13 @@ def frontier(
 
 def _launch(config: Path, overrides: dict, wait: float, verbose: bool, frontier: bool, use_cache: bool) -> str:
     """Check config and input before any flow starts, run the flow, print the summary; return the verdict's status."""
-    from .table import check_input
+    from .load.table import check_input
 
     try:
         cfg = load_config(config, overrides)
         check_input(cfg)
         if cfg.execution.engine == "dask":
-            from .cluster import check_config
+            from .scores.cluster import check_config
 
             check_config(cfg)
     except LeansetError as exc:
@@ -137,7 +137,7 @@ def _launch(config: Path, overrides: dict, wait: float, verbose: bool, frontier:
         os.environ.setdefault("DASK_LOGGING__DISTRIBUTED", "warning")  # read by the scheduler and worker processes too
         logging.getLogger("distributed").setLevel(logging.WARNING)
     from .flows import frontier_flow, prune_flow
-    from .report import frontier_table, read_run, summary
+    from .report.summary import frontier_table, read_run, summary
 
     with _progress(enabled=not verbose):
         state = (frontier_flow if frontier else prune_flow)(cfg, None, wait, use_cache, return_state=True)
@@ -235,7 +235,7 @@ def _store(store: Optional[Path], config: Optional[Path], as_json: bool) -> Path
 
 
 def _audit(fn, as_json: bool, *args, **kwargs):
-    from . import audit
+    from .store import audit
 
     try:
         return getattr(audit, fn)(*args, **kwargs)
@@ -245,7 +245,7 @@ def _audit(fn, as_json: bool, *args, **kwargs):
 
 def _emit(data, as_json: bool, table) -> None:
     if as_json:
-        from .audit import as_json as dump
+        from .store.audit import as_json as dump
 
         typer.echo(dump(data))
     else:
@@ -389,7 +389,7 @@ def open_data(
     out: Path = typer.Option(..., help="Parquet file to write."),
 ) -> None:
     """Write one of scikit-learn's bundled datasets as a parquet table (label column: label)."""
-    from .datasets import export_bundled
+    from .tools.datasets import export_bundled
 
     try:
         path = export_bundled(name, out)
@@ -416,7 +416,7 @@ def bench_score_command(
     """Time the score stage against K plain fits of the same gbdt proxy; the last line is score_overhead_ratio=…"""
     from pydantic import ValidationError
 
-    from .bench import bench_score
+    from .tools.bench import bench_score
     from .config import Config
     from .errors import ConfigError
 
@@ -439,7 +439,7 @@ def bench_make_table_command(
     seed: int = typer.Option(0, help="Seed of the generator."),
 ) -> None:
     """Write an invented classification table as parquet files, chunk by chunk; same seed, same rows."""
-    from .bench import write_table
+    from .tools.bench import write_table
 
     try:
         written = write_table(out, rows, features, classes, seed, files)
@@ -465,7 +465,7 @@ def bench_scale_command(
     """Time load, score and select on parquet tables of growing size, one fresh process each; the last line is time_exponent=…"""
     from pydantic import ValidationError
 
-    from .bench import bench_scale
+    from .tools.bench import bench_scale
     from .config import Config
     from .errors import ConfigError
 

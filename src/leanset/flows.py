@@ -32,14 +32,14 @@ from prefect.cache_policies import NO_CACHE  # noqa: E402
 from prefect.context import FlowRunContext  # noqa: E402
 from prefect.states import Completed, Failed, State  # noqa: E402
 
-from .cache import cached_scores  # noqa: E402
 from .config import Config, load_config  # noqa: E402
-from .frontier import FractionEvaluator, frontier_files, search_fraction, sweep  # noqa: E402
-from .scores import Scores, agreement, score  # noqa: E402
-from .select import Selection, select_frame, stabilise  # noqa: E402
-from .store import ParentRun, read_parent, store_lock, write_run  # noqa: E402
-from .table import RowFrame, load_table  # noqa: E402
-from .verify import Verdict, verify  # noqa: E402
+from .load.table import RowFrame, load_table  # noqa: E402
+from .scores.cache import cached_scores  # noqa: E402
+from .scores.dynamics import Scores, agreement, score  # noqa: E402
+from .select.rules import Selection, select_frame, stabilise  # noqa: E402
+from .store.publish import ParentRun, read_parent, store_lock, write_run  # noqa: E402
+from .verify.frontier import FractionEvaluator, frontier_files, search_fraction, sweep  # noqa: E402
+from .verify.stats import Verdict, verify  # noqa: E402
 
 logger = logging.getLogger(__name__)
 
@@ -80,7 +80,7 @@ def load_task(config: Config, table: pa.Table | None = None) -> RowFrame:
 
 def _score(frame: RowFrame, config: Config, use_cache: bool) -> tuple[Scores, bool]:
     if config.execution.engine == "dask":
-        from .cluster import score as score_on_cluster
+        from .scores.cluster import score as score_on_cluster
 
         # the cluster of the DaskTaskRunner that dask_flow runs with
         return cached_scores(frame, config, lambda: score_on_cluster(frame, config, FlowRunContext.get().task_runner.client), use_cache)
@@ -247,7 +247,7 @@ def _stage_logs():
 
 def _publish(run_dir: str) -> State | str:
     """Publish the run's artifacts; a Failed state (holding the run directory) when its verdict is fail."""
-    from .report import read_run
+    from .report.summary import read_run
 
     publish_task(run_dir)
     status = read_run(run_dir)["verdict"]["status"]
@@ -293,7 +293,7 @@ def _on_engine(config: Config, wait: float, frontier: bool, use_cache: bool) -> 
     execution = config.execution
     if execution.engine == "local":
         return run_stages(config, TASKS, wait, frontier, use_cache)
-    from .cluster import check_config, local_cluster_kwargs
+    from .scores.cluster import check_config, local_cluster_kwargs
     from prefect_dask import DaskTaskRunner
 
     check_config(config)
@@ -308,7 +308,7 @@ def publish_task(run_dir: str) -> None:
     import pyarrow.parquet as pq
     from prefect.artifacts import create_link_artifact, create_markdown_artifact, create_table_artifact
 
-    from .report import markdown_summary, read_run, reason_counts
+    from .report.summary import markdown_summary, read_run, reason_counts
 
     run = read_run(run_dir)
     create_markdown_artifact(markdown_summary(run, run_dir), key="leanset-summary",

@@ -23,9 +23,9 @@ from typing import Callable
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from .config import Config
-from .scores import Scores
-from .table import RowFrame
+from ..config import Config
+from ..load.table import RowFrame
+from .dynamics import Scores
 
 logger = logging.getLogger(__name__)
 

@@ -20,8 +20,8 @@ import pyarrow.csv as pacsv
 import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
-from .config import REGRESSION_METRICS, Config
-from .errors import ConfigError, InputError
+from ..config import REGRESSION_METRICS, Config
+from ..errors import ConfigError, InputError
 
 logger = logging.getLogger(__name__)
 
@@ -379,7 +379,7 @@ def _derive_ids(content: np.ndarray) -> pa.ChunkedArray:
     return pa.chunked_array(chunks, pa.string())
 
 
-def _split(row_id: np.ndarray, y: np.ndarray, fraction: float, folds: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
+def split_rows(row_id: np.ndarray, y: np.ndarray, fraction: float, folds: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
     """Stratified holdout and fold assignment from seeded hashes of the row ids."""
     key = _hash_key("holdout", seed)
     # hashed a step at a time: a string array becomes Python objects only one step at a time
@@ -578,8 +578,8 @@ def load_table(config: Config, table: pa.Table | None = None, holdout: bool = Tr
 
     logger.info("load: %d rows, %d features (%d categorical), %s task, features %s", n, n_features, len(categorical),
                 kind, "in memory" if in_memory else "read in batches")
-    holdout, fold = _split(row_id, y if bins is None else bins, config.holdout.fraction if holdout else 0.0,
-                           config.proxy.folds, config.seed)
+    holdout, fold = split_rows(row_id, y if bins is None else bins, config.holdout.fraction if holdout else 0.0,
+                               config.proxy.folds, config.seed)
     release_memory()
     return RowFrame(
         row_id=row_id, y=y, classes=classes, X=X,
