@@ -174,3 +174,64 @@ def test_streamed_run_writes_the_same_decisions_as_an_in_memory_run(prefect_api,
     memory, streamed = manifests
     assert len(streamed) == 900 and streamed["row_id"].is_unique
     pd.testing.assert_frame_equal(streamed[["row_id", "split", "decision", "reason"]], memory[["row_id", "split", "decision", "reason"]])
+
+
+# --- the command line as a user meets it: version, help, audit by config, rows by value, JSON errors ---
+
+def test_version_comes_from_package_metadata():
+    from importlib.metadata import version
+
+    result = runner.invoke(app, ["--version"])
+    assert result.exit_code == 0 and result.output.strip() == f"leanset {version('leanset')}"
+
+
+def test_help_groups_commands_and_lists_choices():
+    wide = CliRunner(env={"COLUMNS": "200"})
+    top = wide.invoke(app, ["--help"]).output
+    for panel in ("Pipeline", "Audit", "Tools", "--install-completion"):
+        assert panel in top
+    assert top.index("Pipeline") < top.index(" run ") < top.index("Audit") < top.index(" why ") < top.index("Tools")
+    run_help = wide.invoke(app, ["run", "--help"]).output
+    assert "stratified|hardest|easiest|random" in run_help and "auto" in run_help and "--fail-on" in run_help
+
+
+def _prune_to(tmp_path, name, **extra):
+    import leanset
+
+    n = 600
+    path = _table(tmp_path, n=n, name=f"{name}.parquet", serial=np.arange(1000, 1000 + n))
+    cfg = _config(tmp_path, path, name=f"{name}.yaml", store=tmp_path / f"{name}-store", proxy__agreement_rows=0, **extra)
+    leanset.prune(path, config=cfg)
+    return cfg, path
+
+
+def test_audit_finds_the_store_a_config_names_and_rows_by_value(tmp_path):
+    # the table's own id column, integers: why takes its value
+    with_id, _ = _prune_to(tmp_path, "ids", input__id="serial")
+    listed = runner.invoke(app, ["runs", "--config", str(with_id), "--json"])
+    assert listed.exit_code == 0, listed.output
+    (run,) = json.loads(listed.output)
+    why = runner.invoke(app, ["why", "1017", "--config", str(with_id), "--json"])
+    assert why.exit_code == 0, why.output
+    assert json.loads(why.output)["row_id"] == "1017" and json.loads(why.output)["run_id"] == run["run_id"]
+
+    # derived ids: --find COLUMN=VALUE reads the run's input and names the row's derived id
+    derived, path = _prune_to(tmp_path, "derived", input__exclude=["serial"])
+    found = runner.invoke(app, ["why", "--find", "serial=1017", "--config", str(derived), "--json"])
+    assert found.exit_code == 0, found.output
+    (run_dir,) = [p for p in (tmp_path / "derived-store" / "runs").iterdir() if not p.name.startswith(".")]
+    manifest = pq.read_table(run_dir / "manifest.parquet").to_pandas()
+    position = int(np.flatnonzero(pd.read_parquet(path)["serial"] == 1017)[0])
+    assert json.loads(found.output)["row_id"] == manifest["row_id"][position]
+    assert json.loads(found.output)["decision"] == manifest["decision"][position]
+
+
+def test_errors_are_json_with_json(tmp_path):
+    result = runner.invoke(app, ["runs", "--store", str(tmp_path / "nowhere"), "--json"])
+    assert result.exit_code == 2
+    error = json.loads(result.stdout)
+    assert error["type"] == "StoreError" and "nowhere" in error["error"] and error["exit_code"] == 2
+    both = runner.invoke(app, ["runs", "--store", "a", "--config", "b.yaml", "--json"])
+    assert both.exit_code == 2 and "one of them" in json.loads(both.stdout)["error"]
+    plain = runner.invoke(app, ["runs", "--store", str(tmp_path / "nowhere")])
+    assert plain.exit_code == 2 and plain.output.startswith("leanset: error:")

@@ -4,6 +4,7 @@ The select and verify stages are the functions ``leanset.select.select`` and ``l
 """
 
 import importlib
+from importlib import metadata
 
 from .errors import ConfigError, InputError, LeansetError, StoreError
 
@@ -13,11 +14,12 @@ _LAZY = {
     "Config": "config", "load_config": "config", "Scores": "scores.dynamics", "score": "scores.dynamics",
     "Selection": "select.rules", "write_run": "store.publish", "RowFrame": "load.rows", "load_table": "load.table",
     "Verdict": "verify.stats",
+    "RowPruner": "api", "prune": "api", "PruneResult": "api",
 }
 
 __all__ = [
-    "Config", "ConfigError", "InputError", "LeansetError", "RowFrame", "Scores", "Selection",
-    "StoreError", "Verdict", "load_config", "load_table", "score", "write_run",
+    "Config", "ConfigError", "InputError", "LeansetError", "PruneResult", "RowFrame", "RowPruner", "Scores", "Selection",
+    "StoreError", "Verdict", "load_config", "load_table", "prune", "score", "write_run",
 ]
 
 
@@ -27,4 +29,7 @@ def __getattr__(name: str):
     raise AttributeError(f"module 'leanset' has no attribute {name!r}")
 
 
-__version__ = "0.1.0"
+try:
+    __version__ = metadata.version(__name__)  # the one place the version is set is pyproject.toml
+except metadata.PackageNotFoundError:  # run from a source tree that was never installed
+    __version__ = "0+unknown"

@@ -1,14 +1,18 @@
-"""Command line: parses arguments and calls the flows; every LeansetError becomes one line and exit 2.
+"""Command line: parses arguments and calls the flows; every LeansetError becomes one line and exit 2
+(a JSON object with ``--json``).
 
 Stage modules are imported inside the commands that use them, so the audit commands start
-without loading pandas, LightGBM or Prefect.
+without loading pandas, LightGBM or Prefect. Commands are grouped in the help by the panels
+``PIPELINE``, ``AUDIT`` and ``TOOLS``; a new command names its panel with ``rich_help_panel=``.
 """
 
 from __future__ import annotations
 
 import contextlib
+import json
 import logging
 import os
+from enum import Enum
 from pathlib import Path
 from typing import Optional
 
@@ -16,80 +20,135 @@ import typer
 from rich import box
 from rich.console import Console
 
+from . import __version__
 from .config import load_config
 from .errors import LeansetError
 
-app = typer.Typer(add_completion=False, no_args_is_help=True, help="Shrink a labeled table, verify the target model, record why.")
+#: Help panels that group the commands.
+PIPELINE, AUDIT, TOOLS = "Pipeline", "Audit (reads the store only)", "Tools"
+
+app = typer.Typer(no_args_is_help=True, help="Shrink a labeled table, verify the target model, record why.")
 _err = Console(stderr=True)
 
 
+def _show_version(value: bool) -> None:
+    if value:
+        typer.echo(f"leanset {__version__}")
+        raise typer.Exit()
+
+
 @app.callback()
-def _group() -> None:
+def _group(version: bool = typer.Option(False, "--version", callback=_show_version, is_eager=True,
+                                        help="Print leanset's version and exit.")) -> None:
     """Shrink a labeled table with a cheap proxy model, verify a target model on the kept rows, record why."""
 
 
-def _fail(exc: LeansetError) -> None:
-    _err.print(f"[red]leanset: error:[/red] {exc}", soft_wrap=True, highlight=False)
+def _fail(exc: LeansetError, as_json: bool = False) -> None:
+    """Report bad input as one line on stderr (a JSON object on stdout with ``--json``) and exit 2."""
+    if as_json:
+        typer.echo(json.dumps({"error": str(exc), "type": type(exc).__name__, "exit_code": 2}))
+    else:
+        _err.print(f"[red]leanset: error:[/red] {exc}", soft_wrap=True, highlight=False)
     raise typer.Exit(2)
+
+
+class Strategy(str, Enum):
+    """``selection.strategy`` choices."""
+
+    stratified = "stratified"
+    hardest = "hardest"
+    easiest = "easiest"
+    random = "random"
+
+
+class FailOn(str, Enum):
+    """Verdicts that make ``leanset run`` exit non-zero."""
+
+    never = "never"
+    fail = "fail"
+    inconclusive = "inconclusive"
+
+
+#: Exit codes of a run whose verdict is not ``pass`` (bad input stays 2).
+EXIT_FAIL, EXIT_INCONCLUSIVE = 3, 4
 
 
 _CONFIG = typer.Argument(..., help="YAML config file.")
 _SEED = typer.Option(None, help="Override seed.")
 _STORE_OVERRIDE = typer.Option(None, help="Override store (the folder that receives runs/).")
 _WAIT = typer.Option(0.0, help="Seconds to wait for another run holding the store's lock.")
-_VERBOSE = typer.Option(False, "--verbose", help="Show Prefect's own log lines.")
+_VERBOSE = typer.Option(False, "--verbose", help="Show the stages' and Prefect's log lines.")
+_NO_CACHE = typer.Option(False, "--no-cache", help="Score afresh even when the store's cache holds this table's scores.")
 
 
-@app.command()
+@app.command(rich_help_panel=PIPELINE)
 def run(
     config: Path = _CONFIG,
-    fraction: Optional[str] = typer.Option(None, help="Override selection.fraction: a number in (0, 1], or auto."),
-    strategy: Optional[str] = typer.Option(None, help="Override selection.strategy: stratified, hardest, easiest or random."),
+    fraction: Optional[str] = typer.Option(None, metavar="[0<F<=1|auto]", help="Override selection.fraction: a number in (0, 1], or auto (searched)."),
+    strategy: Optional[Strategy] = typer.Option(None, help="Override selection.strategy."),
     seed: Optional[int] = _SEED, store: Optional[Path] = _STORE_OVERRIDE, wait: float = _WAIT, verbose: bool = _VERBOSE,
+    no_cache: bool = _NO_CACHE,
+    fail_on: FailOn = typer.Option(FailOn.never, "--fail-on", help=f"Exit {EXIT_FAIL} on a fail verdict (fail), and also {EXIT_INCONCLUSIVE} on an inconclusive one (inconclusive)."),
 ) -> None:
     """Score, prune and verify the configured table; write a run directory and print a summary."""
-    overrides = {"selection.fraction": fraction, "selection.strategy": strategy, "seed": seed,
+    overrides = {"selection.fraction": fraction, "selection.strategy": strategy.value if strategy else None, "seed": seed,
                  "store": str(store.resolve()) if store else None}
-    _launch(config, overrides, wait, verbose, frontier=False)
+    status = _launch(config, overrides, wait, verbose, frontier=False, use_cache=not no_cache)
+    if status == "fail" and fail_on != FailOn.never:
+        raise typer.Exit(EXIT_FAIL)
+    if status == "inconclusive" and fail_on == FailOn.inconclusive:
+        raise typer.Exit(EXIT_INCONCLUSIVE)
 
 
-@app.command()
+@app.command(rich_help_panel=PIPELINE)
 def frontier(
     config: Path = _CONFIG,
-    fractions: Optional[str] = typer.Option(None, help="Override selection.grid: comma-separated fractions, e.g. 0.05,0.1,0.3."),
+    fractions: Optional[str] = typer.Option(None, metavar="F,F,...", help="Override selection.grid: comma-separated fractions in (0, 1], e.g. 0.05,0.1,0.3."),
     seed: Optional[int] = _SEED, store: Optional[Path] = _STORE_OVERRIDE, wait: float = _WAIT, verbose: bool = _VERBOSE,
+    no_cache: bool = _NO_CACHE,
 ) -> None:
     """A run plus the frontier: the target's holdout metric for every grid fraction and strategy, and random."""
     grid = None if fractions is None else [part.strip() for part in fractions.split(",") if part.strip()]
     overrides = {"selection.grid": grid, "seed": seed, "store": str(store.resolve()) if store else None}
-    _launch(config, overrides, wait, verbose, frontier=True)
+    _launch(config, overrides, wait, verbose, frontier=True, use_cache=not no_cache)
 
 
-def _launch(config: Path, overrides: dict, wait: float, verbose: bool, frontier: bool) -> None:
-    """Check config and input before any flow starts, run the flow, print the summary."""
+def _launch(config: Path, overrides: dict, wait: float, verbose: bool, frontier: bool, use_cache: bool) -> str:
+    """Check config and input before any flow starts, run the flow, print the summary; return the verdict's status."""
     from .preflight import preflight
 
     try:
-        preflight(load_config(config, overrides))
+        cfg = load_config(config, overrides)
+        preflight(cfg)
     except LeansetError as exc:
         _fail(exc)
-    if not verbose:
+    if verbose:
+        from rich.logging import RichHandler
+
+        stages = logging.getLogger("leanset")
+        stages.addHandler(RichHandler(console=_err, show_path=False))
+        stages.setLevel(logging.INFO)
+    else:
         os.environ.setdefault("PREFECT_LOGGING_LEVEL", "WARNING")
         os.environ.setdefault("DASK_LOGGING__DISTRIBUTED", "warning")  # read by the scheduler and worker processes too
         logging.getLogger("distributed").setLevel(logging.WARNING)
     from .flows import frontier_flow, prune_flow
     from .report.summary import frontier_table, read_run, summary
 
-    try:
-        with _progress(enabled=not verbose):
-            run_dir = (frontier_flow if frontier else prune_flow)(str(config), overrides, wait)
-    except LeansetError as exc:
-        _fail(exc)
+    with _progress(enabled=not verbose):
+        state = (frontier_flow if frontier else prune_flow)(cfg, None, wait, use_cache, return_state=True)
+    # a fail verdict ends the flow run Failed, holding the run directory; an exception is raised again here
+    run_dir = state.result(raise_on_failure=False)
+    if isinstance(run_dir, LeansetError):
+        _fail(run_dir)
+    if isinstance(run_dir, BaseException):
+        raise run_dir
     run = read_run(run_dir)
     console = Console()
     if frontier:
         console.print(frontier_table(run))
     console.print(summary(run, run_dir))
+    return run["verdict"]["status"]
 
 
 @contextlib.contextmanager
@@ -118,7 +177,7 @@ def _progress(enabled: bool):
             STAGE_LISTENERS.remove(listen)
 
 
-@app.command()
+@app.command(rich_help_panel=PIPELINE)
 def serve(
     config: Path = typer.Argument(..., help="YAML config file; input.path is usually a folder that receives new parquet files."),
     cron: str = typer.Option(..., "--cron", help='Cron schedule, e.g. "0 2 * * *" for 02:00 every day.'),
@@ -154,17 +213,30 @@ def serve(
 
 # --- audit: questions answered from the run store alone ---------------------------------------
 
-_STORE = typer.Option(Path("leanset-store"), "--store", help="The run store (the folder that holds runs/).")
-_JSON = typer.Option(False, "--json", help="Print JSON for machines instead of a table.")
+_STORE = typer.Option(None, "--store", help="The run store (the folder that holds runs/); default ./leanset-store.")
+_CONFIG_STORE = typer.Option(None, "--config", help="A YAML config: use the store it names.")
+_JSON = typer.Option(False, "--json", help="Print JSON for machines instead of a table (errors too).")
 
 
-def _audit(fn, *args, **kwargs):
+def _store(store: Optional[Path], config: Optional[Path], as_json: bool) -> Path:
+    """The store given by --store, or named by --config's ``store``, or ./leanset-store."""
+    if store is not None and config is not None:
+        _fail(LeansetError("--store and --config both name a store; give one of them"), as_json)
+    if config is None:
+        return store or Path("leanset-store")
+    try:
+        return load_config(config).store
+    except LeansetError as exc:
+        _fail(exc, as_json)
+
+
+def _audit(fn, as_json: bool, *args, **kwargs):
     from .store import audit
 
     try:
         return getattr(audit, fn)(*args, **kwargs)
     except LeansetError as exc:
-        _fail(exc)
+        _fail(exc, as_json)
 
 
 def _emit(data, as_json: bool, table) -> None:
@@ -194,12 +266,13 @@ def _fmt(value, digits: int = 4) -> str:
     return str(value)
 
 
-@app.command("runs")
-def runs_command(store: Path = _STORE, json_: bool = _JSON) -> None:
+@app.command("runs", rich_help_panel=AUDIT)
+def runs_command(store: Optional[Path] = _STORE, config: Optional[Path] = _CONFIG_STORE, json_: bool = _JSON) -> None:
     """List the runs in a store: when, input rows, kept, verdict, churn."""
     from rich.table import Table
 
-    rows = _audit("runs", store)
+    store = _store(store, config, json_)
+    rows = _audit("runs", json_, store)
     table = Table(title=f"runs in {store}", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False, collapse_padding=True)
     for col in ("#", "run", "when (UTC)", "rows", "kept", "verdict", "churn"):
         table.add_column(col, justify="left" if col in ("run", "when (UTC)", "verdict") else "right", no_wrap=col != "when (UTC)")
@@ -210,12 +283,21 @@ def runs_command(store: Path = _STORE, json_: bool = _JSON) -> None:
     _emit(rows, json_, table)
 
 
-@app.command("why")
-def why_command(row_id: str = typer.Argument(..., help="The row id (as in the manifest's row_id)."),
+@app.command("why", rich_help_panel=AUDIT)
+def why_command(row_id: Optional[str] = typer.Argument(None, help="The row id: the value of the table's id column (input.id), or the derived id in the manifest's row_id."),
+                find: Optional[str] = typer.Option(None, "--find", metavar="COLUMN=VALUE", help="Find the row by the value of any column of the run's input table (reads the table)."),
                 run: Optional[str] = typer.Option(None, "--run", help="Run id or unique prefix; default: the latest run holding the row."),
-                store: Path = _STORE, json_: bool = _JSON) -> None:
+                store: Optional[Path] = _STORE, config: Optional[Path] = _CONFIG_STORE, json_: bool = _JSON) -> None:
     """Why a row was kept or dropped: decision, reason, scores and their class percentiles, thresholds."""
-    w = _audit("why", store, row_id, run)
+    store = _store(store, config, json_)
+    if (row_id is None) == (find is None):
+        _fail(LeansetError("give a ROW_ID or --find COLUMN=VALUE (one of them)"), json_)
+    if find is not None:
+        column, sep, value = find.partition("=")
+        if not sep or not column:
+            _fail(LeansetError(f"--find {find!r}: write it as COLUMN=VALUE, e.g. --find serial=A-1017"), json_)
+        row_id = _audit("find", json_, store, column, value, run)
+    w = _audit("why", json_, store, row_id, run)
     t = w["thresholds"]
     table = _fields(f"row {row_id} in run {w['run_id']}")
     table.add_row("decision", f"{w['decision']} ({w['reason']})")
@@ -234,12 +316,14 @@ def why_command(row_id: str = typer.Argument(..., help="The row id (as in the ma
     _emit(w, json_, table)
 
 
-@app.command("history")
-def history_command(row_id: str = typer.Argument(..., help="The row id."), store: Path = _STORE, json_: bool = _JSON) -> None:
+@app.command("history", rich_help_panel=AUDIT)
+def history_command(row_id: str = typer.Argument(..., help="The row id."), store: Optional[Path] = _STORE,
+                    config: Optional[Path] = _CONFIG_STORE, json_: bool = _JSON) -> None:
     """A row's decision in every run of the store."""
     from rich.table import Table
 
-    rows = _audit("history", store, row_id)
+    store = _store(store, config, json_)
+    rows = _audit("history", json_, store, row_id)
     table = Table(title=f"history of row {row_id}", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
     for col in ("#", "run", "decision", "reason", "stratum", "weight"):
         table.add_column(col, no_wrap=col != "reason")
@@ -249,17 +333,18 @@ def history_command(row_id: str = typer.Argument(..., help="The row id."), store
     _emit(rows, json_, table)
 
 
-@app.command("diff")
+@app.command("diff", rich_help_panel=AUDIT)
 def diff_command(run_a: str = typer.Argument(..., help="The earlier run (id or unique prefix)."),
                  run_b: str = typer.Argument(..., help="The later run (id or unique prefix)."),
                  limit: int = typer.Option(20, help="Changed rows to list."),
                  out: Optional[Path] = typer.Option(None, "--out", help="Write every changed row to this parquet file."),
-                 store: Path = _STORE, json_: bool = _JSON) -> None:
+                 store: Optional[Path] = _STORE, config: Optional[Path] = _CONFIG_STORE, json_: bool = _JSON) -> None:
     """Counts, and the rows whose decision changed between two runs, by reason."""
     from rich.console import Group
     from rich.table import Table
 
-    d = _audit("diff", store, run_a, run_b, limit, out)
+    store = _store(store, config, json_)
+    d = _audit("diff", json_, store, run_a, run_b, limit, out)
     c = d["counts"]
     head = _fields(f"{d['run_a']} → {d['run_b']}")
     head.add_row("rows", f"{c['rows_a']:,} → {c['rows_b']:,} ({c['both']:,} in both, {c['only_b']:,} new, {c['only_a']:,} gone)")
@@ -277,23 +362,24 @@ def diff_command(run_a: str = typer.Argument(..., help="The earlier run (id or u
     _emit(d, json_, Group(head, trans, rows) if d["transitions"] else head)
 
 
-@app.command("restore")
+@app.command("restore", rich_help_panel=AUDIT)
 def restore_command(run: str = typer.Argument(..., help="Run id or unique prefix."),
                     reason: list[str] = typer.Option(..., "--reason", help="A drop reason to put back (repeat for several)."),
                     out: Optional[Path] = typer.Option(None, "--out", help="Output file (.parquet, .csv or .tsv); default restore-<run>.parquet."),
                     ids_only: bool = typer.Option(False, "--ids-only", help="Write only the manifest columns (row_id, label, decision, reason, weight); do not read the input table."),
-                    store: Path = _STORE, json_: bool = _JSON) -> None:
+                    store: Optional[Path] = _STORE, config: Optional[Path] = _CONFIG_STORE, json_: bool = _JSON) -> None:
     """Write the kept rows plus the dropped rows of the given reasons, with re-balanced weights."""
+    store = _store(store, config, json_)
     if out is None:
         out = Path(f"restore-{run}.parquet")
-    r = _audit("restore", store, run, reason, out, rows=not ids_only)
+    r = _audit("restore", json_, store, run, reason, out, rows=not ids_only)
     table = _fields(f"restore from run {r['run_id']}")
     table.add_row("rows written", f"{r['rows']:,} = {r['kept']:,} kept + {r['restored']:,} restored ({', '.join(r['reasons'])})")
     table.add_row("written to", r["out"])
     _emit(r, json_, table)
 
 
-@app.command("open-data")
+@app.command("open-data", rich_help_panel=TOOLS)
 def open_data(
     name: str = typer.Argument(..., help="digits, breast_cancer, wine, iris or diabetes."),
     out: Path = typer.Option(..., help="Parquet file to write."),
@@ -309,7 +395,7 @@ def open_data(
 
 
 bench_app = typer.Typer(no_args_is_help=True, help="Benchmarks that print figures (time, peak memory).")
-app.add_typer(bench_app, name="bench")
+app.add_typer(bench_app, name="bench", rich_help_panel=TOOLS)
 
 
 @bench_app.command("score")

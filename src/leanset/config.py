@@ -235,6 +235,19 @@ def load_config(path: str | Path, overrides: dict[str, Any] | None = None) -> Co
         node = raw.get(section) if section else raw
         if isinstance(node, dict) and node.get(key) is not None and not Path(str(node[key])).is_absolute():
             node[key] = str(base / str(node[key]))
+    return parse_config(raw, overrides, str(path))
+
+
+def parse_config(raw: dict[str, Any], overrides: dict[str, Any] | None = None, source: str = "config") -> Config:
+    """Apply dotted-key overrides to a mapping of sections (``raw`` is changed) and validate it.
+
+    ``source`` names the config in error messages.
+
+    Raises
+    ------
+    ConfigError
+        Naming the key at fault and the fix.
+    """
     for dotted, value in (overrides or {}).items():
         if value is None:
             continue
@@ -245,9 +258,9 @@ def load_config(path: str | Path, overrides: dict[str, Any] | None = None) -> Co
                 node[p] = {}
             node = node[p]
             if not isinstance(node, dict):
-                raise ConfigError(f"{path}: cannot set '{dotted}': '{p}' is not a section; fix the override or the file")
+                raise ConfigError(f"{source}: cannot set '{dotted}': '{p}' is not a section; fix the override or the file")
         node[leaf] = value
     try:
         return Config.model_validate(raw)
     except ValidationError as err:
-        raise _first_error(err, str(path)) from None
+        raise _first_error(err, source) from None

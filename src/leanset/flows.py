@@ -1,8 +1,12 @@
-"""Prefect tasks and flows that run the stages in order; they orchestrate and hold no logic.
+"""Prefect tasks and flows: the run's outline, load → score → select → verify → write.
 
-Each stage is a plain function of its own module; here each becomes a task. Tasks take large
-in-memory frames, so they are not cached by input hash (``NO_CACHE``); the load and write tasks
-retry on I/O errors.
+Each stage is a plain function of its own module and each task calls one. Tasks take large
+in-memory frames, so Prefect does not cache them by input hash (``NO_CACHE``); the score stage
+keeps its own cache under the store (:mod:`leanset.cache`) and ends ``Cached`` when it used it.
+The load and write tasks retry on I/O errors. Stage logs (the ``leanset`` loggers of the standard
+``logging`` module) are sent to Prefect's API with the task run that logged them, and every flow
+run publishes its artifacts (summary, reasons table, link to the report). A run whose verdict is
+``fail`` ends in a Failed flow run.
 """
 
 from __future__ import annotations
@@ -11,28 +15,57 @@ import os
 
 os.environ.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
 
+import contextlib  # noqa: E402
+import contextvars  # noqa: E402
+import functools  # noqa: E402
+import logging  # noqa: E402
 import time  # noqa: E402
 from pathlib import Path  # noqa: E402
+from types import SimpleNamespace  # noqa: E402
 from typing import Any  # noqa: E402
 
 import pandas as pd  # noqa: E402
+import pyarrow as pa  # noqa: E402
 from prefect import flow, task  # noqa: E402
 from prefect.cache_policies import NO_CACHE  # noqa: E402
 from prefect.context import FlowRunContext  # noqa: E402
+from prefect.states import Completed, Failed, State  # noqa: E402
 
 from .config import Config, load_config  # noqa: E402
-from .verify.frontier import FractionEvaluator, frontier_files, search_fraction, sweep  # noqa: E402
+from .load.rows import RowFrame  # noqa: E402
+from .load.table import load_table  # noqa: E402
 from .preflight import preflight  # noqa: E402
+from .scores.cache import cached_scores  # noqa: E402
 from .scores.dynamics import Scores, agreement, score  # noqa: E402
 from .select.rules import Selection, select_frame, stabilise  # noqa: E402
 from .store.publish import ParentRun, read_parent, store_lock, write_run  # noqa: E402
-from .load.rows import RowFrame  # noqa: E402
-from .load.table import load_table  # noqa: E402
+from .verify.frontier import FractionEvaluator, frontier_files, search_fraction, sweep  # noqa: E402
 from .verify.stats import Verdict, verify  # noqa: E402
 
+logger = logging.getLogger(__name__)
 
 #: Callables told the name of each stage as it starts (the CLI draws its progress display from them).
 STAGE_LISTENERS: list = []
+
+#: Seconds per stage of the run in progress, written into run.json's ``timings``.
+_TIMINGS: contextvars.ContextVar[dict[str, float]] = contextvars.ContextVar("leanset_timings")
+
+
+def _stage(name: str):
+    """Announce the stage to the listeners and record its seconds in the run's timings."""
+    def wrap(fn):
+        @functools.wraps(fn)
+        def timed(*args, **kwargs):
+            for listen in STAGE_LISTENERS:
+                listen(name)
+            t0 = time.perf_counter()
+            out = fn(*args, **kwargs)
+            timings = _TIMINGS.get(None)
+            if timings is not None:
+                timings[name] = round(time.perf_counter() - t0, 3)
+            return out
+        return timed
+    return wrap
 
 
 def _io_error(task, task_run, state) -> bool:
@@ -41,46 +74,66 @@ def _io_error(task, task_run, state) -> bool:
 
 
 @task(name="load", cache_policy=NO_CACHE, retries=2, retry_delay_seconds=1, retry_condition_fn=_io_error)
-def load_task(config: Config) -> RowFrame:
-    return load_table(config)
+@_stage("load")
+def load_task(config: Config, table: pa.Table | None = None) -> RowFrame:
+    return load_table(config, table)
+
+
+def _score(frame: RowFrame, config: Config, use_cache: bool) -> tuple[Scores, bool]:
+    if config.execution.engine == "dask":
+        from .scores.cluster import score as score_on_cluster
+
+        # the cluster of the DaskTaskRunner that dask_flow runs with
+        return cached_scores(frame, config, lambda: score_on_cluster(frame, config, FlowRunContext.get().task_runner.client), use_cache)
+    return cached_scores(frame, config, lambda: score(frame, config), use_cache)
 
 
 @task(name="score", cache_policy=NO_CACHE)
-def score_task(frame: RowFrame, config: Config) -> Scores:
-    if config.execution.engine == "dask":
-        from .scores.cluster import score as score_on_cluster
-        # the cluster of the DaskTaskRunner that dask_flow runs with
-        return score_on_cluster(frame, config, FlowRunContext.get().task_runner.client)
-    return score(frame, config)
+@_stage("score")
+def score_task(frame: RowFrame, config: Config, use_cache: bool = True) -> State:
+    """The scores, in a Completed state; named Cached, as Prefect names a cached task run's state,
+    when they came from the store's cache."""
+    scores, hit = _score(frame, config, use_cache)
+    return Completed(name="Cached" if hit else "Completed", data=scores,
+                     message="scores read from the store's cache" if hit else None)
 
 
 @task(name="agreement", cache_policy=NO_CACHE)
+@_stage("agreement")
 def agreement_task(frame: RowFrame, scores: Scores, config: Config) -> dict | None:
     return agreement(frame, scores, config)
 
 
 @task(name="select", cache_policy=NO_CACHE)
+@_stage("select")
 def select_task(frame: RowFrame, scores: Scores, config: Config) -> Selection:
     return select_frame(frame, scores, config)
 
 
 @task(name="verify", cache_policy=NO_CACHE)
+@_stage("verify")
 def verify_task(frame: RowFrame, selection: Selection, config: Config, evaluator: FractionEvaluator | None) -> Verdict:
     # the evaluator of a searched fraction already holds the full-data fit and both feature sets
-    return verify(frame, selection, config, None if evaluator is None else evaluator.reference)
+    verdict = verify(frame, selection, config, None if evaluator is None else evaluator.reference)
+    logger.info("verify: %s, delta %s %+.4f, interval [%+.4f, %+.4f], tolerance %s", verdict.status, verdict.metric,
+                verdict.delta, *verdict.ci, verdict.tolerance)
+    return verdict
 
 
 @task(name="fit-full", cache_policy=NO_CACHE)
+@_stage("fit-full")
 def full_fit_task(frame: RowFrame, scores: Scores, config: Config) -> FractionEvaluator:
     return FractionEvaluator(frame, scores, config)
 
 
 @task(name="search-fraction", cache_policy=NO_CACHE)
+@_stage("search-fraction")
 def search_task(evaluator: FractionEvaluator, config: Config) -> tuple[float, list[dict]]:
     return search_fraction(evaluator, config.selection.strategy, config.selection.grid)
 
 
 @task(name="frontier", cache_policy=NO_CACHE)
+@_stage("frontier")
 def frontier_task(evaluator: FractionEvaluator, config: Config) -> pd.DataFrame:
     return sweep(evaluator, config.selection.grid)
 
@@ -91,6 +144,7 @@ def parent_task(config: Config) -> ParentRun | None:
 
 
 @task(name="stabilise", cache_policy=NO_CACHE)
+@_stage("stabilise")
 def stabilise_task(frame: RowFrame, scores: Scores, fresh: Selection, parent: ParentRun, config: Config) -> Selection:
     previous, pct = parent.align(frame.row_id[frame.train])
     return stabilise(fresh, scores.difficulty(config.selection.score), frame.groups[frame.train], previous, pct,
@@ -98,90 +152,155 @@ def stabilise_task(frame: RowFrame, scores: Scores, fresh: Selection, parent: Pa
 
 
 @task(name="write", cache_policy=NO_CACHE, retries=2, retry_delay_seconds=1, retry_condition_fn=_io_error)
-def write_task(frame, scores, selection, verdict, config, timings, parent, extra, files) -> str:
-    return str(write_run(frame, scores, selection, verdict, config, timings, parent=parent, locked=True,
+def write_task(frame, scores, selection, verdict, config, parent, extra, files) -> str:
+    return str(write_run(frame, scores, selection, verdict, config, dict(_TIMINGS.get()), parent=parent, locked=True,
                          extra=extra, files=files))
 
 
-def _pipeline(config_path: str, overrides: dict[str, Any] | None, wait: float, frontier: bool) -> str:
-    """The run's outline. The store lock is held from start to end, so the parent run read here is
-    still the last run when this one is published; a second run waits up to ``wait`` seconds, then stops."""
-    config = load_config(config_path, overrides)
-    preflight(config)  # everything checkable, before the lock is taken or any fit starts
-    timings: dict[str, float] = {}
+def _score_in_flow(frame: RowFrame, config: Config, use_cache: bool = True) -> Scores:
+    # a task that returns a state hands back that state, Cached or not; its result is the scores
+    return score_task(frame, config, use_cache, return_state=True).result()
 
-    def timed(name, fn, *args):
-        for listen in STAGE_LISTENERS:
-            listen(name)
-        t0 = time.perf_counter()
-        out = fn(*args)
-        timings[name] = round(time.perf_counter() - t0, 3)
-        return out
 
-    with store_lock(config.store, wait):
-        frame = timed("load", load_task, config)
-        parent = parent_task(config)
-        scores = timed("score", score_task, frame, config)
-        scores.info["agreement"] = timed("agreement", agreement_task, frame, scores, config)
-        auto = config.selection.fraction == "auto"
-        evaluator = timed("fit-full", full_fit_task, frame, scores, config) if auto or frontier else None
-        extra: dict[str, Any] = {}
-        files: dict[str, bytes] = {}
-        if auto:
-            fraction, tried = timed("search-fraction", search_task, evaluator, config)
-            extra["search"] = {"strategy": config.selection.strategy, "fraction": fraction, "tried": tried}
-            config = config.model_copy(update={"selection": config.selection.model_copy(update={"fraction": fraction})})
-        selection = timed("select", select_task, frame, scores, config)
-        if parent is not None:
-            selection = timed("stabilise", stabilise_task, frame, scores, selection, parent, config)
-        verdict = timed("verify", verify_task, frame, selection, config, evaluator)
-        if frontier:
-            table = timed("frontier", frontier_task, evaluator, config)
-            extra["frontier"] = table.to_dict(orient="records")
-            files = frontier_files(table, config.verify.metric)
-        return write_task(frame, scores, selection, verdict, config, timings, parent, extra, files)
+#: The stages as Prefect tasks (inside a flow) ...
+TASKS = SimpleNamespace(load=load_task, parent=parent_task, score=_score_in_flow, agreement=agreement_task,
+                        fit_full=full_fit_task, search=search_task, select=select_task, stabilise=stabilise_task,
+                        verify=verify_task, frontier=frontier_task, write=write_task)
+#: ... and as the plain functions they call, for a run without Prefect (``leanset.prune``).
+PLAIN = SimpleNamespace(**{name: t.fn for name, t in vars(TASKS).items() if name != "score"},
+                        score=lambda frame, config, use_cache=True: score_task.fn(frame, config, use_cache).data)
+
+
+def run_stages(config: Config, stages: SimpleNamespace = TASKS, wait: float = 0.0, frontier: bool = False,
+               use_cache: bool = True, table: pa.Table | None = None) -> str:
+    """The run's outline; returns the run directory.
+
+    The store lock is held from start to end, so the parent run read here is still the last run
+    when this one is published; a second run waits up to ``wait`` seconds, then stops.
+
+    Parameters
+    ----------
+    stages : namespace
+        :data:`TASKS` inside a flow, :data:`PLAIN` without Prefect.
+    table : pyarrow.Table, optional
+        The input rows in memory, read in place of ``input.path``.
+    """
+    token = _TIMINGS.set({})
+    try:
+        with store_lock(config.store, wait):
+            frame = stages.load(config, table)
+            parent = stages.parent(config)
+            scores = stages.score(frame, config, use_cache)
+            scores.info["agreement"] = stages.agreement(frame, scores, config)
+            auto = config.selection.fraction == "auto"
+            evaluator = stages.fit_full(frame, scores, config) if auto or frontier else None
+            extra: dict[str, Any] = {}
+            if auto:
+                fraction, tried = stages.search(evaluator, config)
+                extra["search"] = {"strategy": config.selection.strategy, "fraction": fraction, "tried": tried}
+                config = config.model_copy(update={"selection": config.selection.model_copy(update={"fraction": fraction})})
+            selection = stages.select(frame, scores, config)
+            if parent is not None:
+                selection = stages.stabilise(frame, scores, selection, parent, config)
+            verdict = stages.verify(frame, selection, config, evaluator)
+            files: dict[str, bytes] = {}
+            if frontier:
+                front = stages.frontier(evaluator, config)
+                extra["frontier"] = front.to_dict(orient="records")
+                files = frontier_files(front, config.verify.metric)
+            return stages.write(frame, scores, selection, verdict, config, parent, extra, files)
+    finally:
+        _TIMINGS.reset(token)
+
+
+def _config(config: Config | str | Path, overrides: dict[str, Any] | None) -> Config:
+    return config if isinstance(config, Config) else load_config(config, overrides)
+
+
+@contextlib.contextmanager
+def _stage_logs():
+    """Send the stages' ``leanset`` log records to Prefect's API while a flow runs.
+
+    When the ``leanset`` logger has no level of its own, its INFO records go to Prefect only (not
+    to the console handlers of the root logger) for the flow's duration."""
+    from prefect.logging.handlers import APILogHandler
+
+    root = logging.getLogger("leanset")
+    handler, level, propagate = APILogHandler(), root.level, root.propagate
+    root.addHandler(handler)
+    if level == logging.NOTSET:
+        root.setLevel(logging.INFO)
+        root.propagate = False
+    try:
+        yield
+    finally:
+        root.removeHandler(handler)
+        root.setLevel(level)
+        root.propagate = propagate
+
+
+def _publish(run_dir: str) -> State | str:
+    """Publish the run's artifacts; a Failed state (holding the run directory) when its verdict is fail."""
+    from .report.summary import read_run
+
+    publish_task(run_dir)
+    status = read_run(run_dir)["verdict"]["status"]
+    if status == "fail":
+        return Failed(message=f"verdict fail: the kept rows' model is outside the tolerance; see {run_dir}", data=run_dir)
+    return run_dir
 
 
 @flow(name="leanset-prune", log_prints=False)
-def prune_flow(config_path: str, overrides: dict[str, Any] | None = None, wait: float = 0.0) -> str:
+def prune_flow(config: Config | str, overrides: dict[str, Any] | None = None, wait: float = 0.0,
+               use_cache: bool = True) -> str:
     """One run: load, score, search the fraction when it is ``auto``, select (stable against the
-    parent run), verify, write; returns the run directory."""
-    return _on_engine(config_path, overrides, wait, frontier=False)
+    parent run), verify, write, publish its artifacts; returns the run directory.
+
+    ``config`` is a validated :class:`~leanset.config.Config`, or the path of a YAML config to
+    which ``overrides`` (dotted keys) apply. The flow run ends Failed when the verdict is ``fail``.
+    """
+    with _stage_logs():
+        run_dir = _on_engine(_config(config, overrides), wait, frontier=False, use_cache=use_cache)
+        return _publish(run_dir)
 
 
 @flow(name="leanset-frontier", log_prints=False)
-def frontier_flow(config_path: str, overrides: dict[str, Any] | None = None, wait: float = 0.0) -> str:
-    """A run plus the frontier: every grid fraction × strategy, judged against one full-data fit."""
-    return _on_engine(config_path, overrides, wait, frontier=True)
+def frontier_flow(config: Config | str, overrides: dict[str, Any] | None = None, wait: float = 0.0,
+                  use_cache: bool = True) -> str:
+    """A run plus the frontier: every grid fraction × strategy, judged against one full-data fit.
+    It ends Completed whatever the verdict at the configured fraction: the frontier is the result."""
+    with _stage_logs():
+        run_dir = _on_engine(_config(config, overrides), wait, frontier=True, use_cache=use_cache)
+        publish_task(run_dir)
+        return run_dir
 
 
 @flow(name="leanset-dask", log_prints=False)
-def dask_flow(config_path: str, overrides: dict[str, Any] | None, wait: float, frontier: bool) -> str:
+def dask_flow(config: Config, wait: float, frontier: bool, use_cache: bool = True) -> str:
     """The run's outline under a ``prefect_dask.DaskTaskRunner``, whose cluster the score stage uses."""
-    return _pipeline(config_path, overrides, wait, frontier)
+    return run_stages(config, TASKS, wait, frontier, use_cache)
 
 
-def _on_engine(config_path: str, overrides: dict[str, Any] | None, wait: float, frontier: bool) -> str:
+def _on_engine(config: Config, wait: float, frontier: bool, use_cache: bool) -> str:
     """The run in the calling flow (``execution.engine: local``), or in :func:`dask_flow` on the
     scheduler at ``execution.address`` or a local cluster of ``execution.workers`` processes (``dask``)."""
-    config = load_config(config_path, overrides)
+    preflight(config)  # everything checkable, before the lock is taken or any fit starts
     execution = config.execution
     if execution.engine == "local":
-        return _pipeline(config_path, overrides, wait, frontier)
-    from .scores.cluster import check_config, local_cluster_kwargs
+        return run_stages(config, TASKS, wait, frontier, use_cache)
+    from .scores.cluster import local_cluster_kwargs
     from prefect_dask import DaskTaskRunner
 
-    check_config(config)
     runner = (DaskTaskRunner(address=execution.address) if execution.address
               else DaskTaskRunner(cluster_kwargs=local_cluster_kwargs(execution)))
-    return dask_flow.with_options(task_runner=runner)(config_path, overrides, wait, frontier)
+    return dask_flow.with_options(task_runner=runner)(config, wait, frontier, use_cache)
 
 
 @task(name="publish", cache_policy=NO_CACHE)
 def publish_task(run_dir: str) -> None:
-    """Prefect artifacts of a run: a markdown summary and a table of row counts by reason."""
+    """Prefect artifacts of a run: a markdown summary, a table of row counts by reason, a link to its report."""
     import pyarrow.parquet as pq
-    from prefect.artifacts import create_markdown_artifact, create_table_artifact
+    from prefect.artifacts import create_link_artifact, create_markdown_artifact, create_table_artifact
 
     from .report.summary import markdown_summary, read_run, reason_counts
 
@@ -190,11 +309,12 @@ def publish_task(run_dir: str) -> None:
                              description=f"leanset run {run['run_id']}")
     create_table_artifact(reason_counts(pq.read_table(Path(run_dir) / "manifest.parquet", columns=["row_id", "decision", "reason"])),
                           key="leanset-reasons", description=f"rows by reason in run {run['run_id']}")
+    create_link_artifact((Path(run_dir).resolve() / "report.html").as_uri(), link_text="report.html", key="leanset-report",
+                         description=f"the report of run {run['run_id']}")
 
 
 @flow(name="leanset-scheduled", log_prints=False)
-def scheduled_flow(config_path: str, wait: float = 0.0) -> str:
-    """A scheduled run over a growing table: the run (linked to its parent), then its artifacts."""
-    run_dir = prune_flow(config_path, None, wait)
-    publish_task(run_dir)
-    return run_dir
+def scheduled_flow(config_path: str, wait: float = 0.0) -> State:
+    """A scheduled run over a growing table: the run, linked to its parent, with its artifacts; it
+    ends Failed when the verdict is ``fail``."""
+    return prune_flow(config_path, None, wait, return_state=True)

@@ -21,6 +21,8 @@ from typing import Any
 
 import numpy as np
 
+import pyarrow as pa
+
 from .config import Config, ProxyConfig, TargetConfig
 from .errors import ConfigError, StoreError
 from .load.table import InputSummary, check_input
@@ -29,8 +31,14 @@ from .load.table import InputSummary, check_input
 _TINY_ROWS = 60
 
 
-def preflight(config: Config) -> InputSummary:
+def preflight(config: Config, table: pa.Table | None = None) -> InputSummary:
     """Check the table, the store, the proxy and the target of ``config`` before any fit.
+
+    Parameters
+    ----------
+    config : Config
+    table : pyarrow.Table, optional
+        The input rows in memory, checked in place of ``input.path``.
 
     Returns
     -------
@@ -43,7 +51,7 @@ def preflight(config: Config) -> InputSummary:
         ``InputError``, ``ConfigError`` or ``StoreError`` naming the file, column, key or value
         at fault, and the fix.
     """
-    summary = check_input(config)
+    summary = check_input(config, table)
     check_settings(config, summary)
     check_store(config.store)
     if config.execution.engine == "dask":

@@ -49,7 +49,7 @@ def split_rows(row_id: np.ndarray, y: np.ndarray, fraction: float, folds: int, s
     starts = np.concatenate(([0], np.cumsum(counts)[:-1]))
     rank = np.empty(len(y), dtype=np.int64)
     rank[order] = np.arange(len(y)) - np.repeat(starts, counts)
-    n_hold = np.maximum(1, np.round(fraction * counts).astype(np.int64))
+    n_hold = np.maximum(1 if fraction > 0 else 0, np.round(fraction * counts).astype(np.int64))
     holdout = rank < n_hold[y]
     fold = ((rank - n_hold[y]) % folds).astype(np.int8)
     fold[holdout] = -1

@@ -7,6 +7,7 @@ row view live in :mod:`leanset.load.rows`.
 from __future__ import annotations
 
 import hashlib
+import logging
 from pathlib import Path
 from typing import NamedTuple
 
@@ -24,12 +25,17 @@ from .memory import release_memory
 from .rows import RowFrame, encode_columns
 from .split import _derive_ids, _row_hashes, split_rows
 
+logger = logging.getLogger(__name__)
+
 #: Columns leanset adds to its outputs; an input column of the same name would be shadowed.
 RESERVED = ("weight",)
 
 
-def _dataset(path: Path) -> ds.Dataset:
-    """The table at ``path`` as an Arrow dataset, refused when it is missing, unreadable or empty."""
+def _dataset(path: Path, table: pa.Table | None = None) -> ds.Dataset:
+    """The table at ``path`` as an Arrow dataset, refused when it is missing, unreadable or empty;
+    ``table``, an Arrow table in memory, stands in for it when given."""
+    if table is not None:
+        return ds.dataset(table)
     if not path.exists():
         raise InputError(f"input.path: {path} not found; point input.path at a parquet file, a folder of parquet files or a CSV file")
     try:
@@ -138,15 +144,44 @@ def _check_label_and_id(table: pa.Table, config: Config, path: Path) -> None:
 LABEL_BINS = 10
 
 
+#: Most distinct values a label of whole numbers may hold to be taken as classes when ``input.task``
+#: is ``auto``; above it the task is ambiguous and the label is refused (common practice, no source:
+#: a class label with more values than this is more often a count or a measurement).
+MAX_AUTO_CLASSES = 50
+
+
 def task(table: pa.Table, config: Config) -> str:
-    """``input.task``, or when ``auto``: regression for a float label holding non-integer values."""
-    if config.input.task != "auto":
-        return config.input.task
-    label = table.column(config.input.label)
-    if not pa.types.is_floating(label.type):
+    """The task of the table's label: ``input.task`` when set, else inferred.
+
+    With ``input.task: auto``, a regression metric (``verify.metric`` rmse, mae or r2) means
+    regression; a float label holding non-integer values means regression; strings, booleans and
+    whole numbers (integers, or floats holding whole numbers) with at most :data:`MAX_AUTO_CLASSES`
+    distinct values mean classification.
+
+    Raises
+    ------
+    ConfigError
+        When a label of whole numbers holds more than :data:`MAX_AUTO_CLASSES` distinct values:
+        the config must say which task it means.
+    """
+    inp = config.input
+    if inp.task != "auto":
+        return inp.task
+    if config.verify.metric in REGRESSION_METRICS:
+        return "regression"
+    label = table.column(inp.label)
+    t = label.type
+    if not (pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t)):
         return "classification"
-    vals = label.to_numpy()
-    return "regression" if np.any(np.isfinite(vals) & (vals != np.round(vals))) else "classification"
+    vals = label.to_numpy().astype(np.float64) if not pa.types.is_decimal(t) else label.cast(pa.float64()).to_numpy()
+    if np.any(np.isfinite(vals) & (vals != np.round(vals))):
+        return "regression"
+    distinct = len(pc.unique(label.combine_chunks()))
+    if distinct > MAX_AUTO_CLASSES:
+        raise ConfigError(f"input.label: '{inp.label}' holds {distinct} distinct whole numbers (more than {MAX_AUTO_CLASSES} "
+                          "for classes by default); set input.task: regression and verify.metric: rmse to predict it as a number, "
+                          "or input.task: classification to keep each value as a class")
+    return "classification"
 
 
 def _check_continuous_label(label, config: Config, path: Path) -> None:
@@ -201,9 +236,11 @@ def _count_infinite(batch, names: list[str], start: int, counts: dict[str, int],
         counts[name] += k
 
 
-def check_input(config: Config) -> InputSummary:
+def check_input(config: Config, table: pa.Table | None = None) -> InputSummary:
     """Check the table against the config: its schema, label and id columns, and one pass over its
     float feature columns for infinite values (NaN is read as missing; infinity is refused).
+
+    ``table``, when given, is an Arrow table in memory that stands in for ``input.path``.
 
     Raises
     ------
@@ -211,7 +248,7 @@ def check_input(config: Config) -> InputSummary:
         Naming the file, column or value at fault, and the fix.
     """
     path = config.input.path
-    dataset = _dataset(path)
+    dataset = _dataset(path, table)
     numeric, categorical = _feature_columns(dataset.schema, config, path)
     cols = [c for c in (config.input.label, config.input.id, *RESERVED) if c is not None and c in dataset.schema.names]
     table = _read(dataset, path, cols)
@@ -309,8 +346,12 @@ class TableSource:
             raise _unreadable(self.path, exc) from None
 
 
-def load_table(config: Config) -> RowFrame:
+def load_table(config: Config, table: pa.Table | None = None, holdout: bool = True) -> RowFrame:
     """Read and check the configured table in record batches and turn it into a :class:`RowFrame`.
+
+    ``table``, when given, is an Arrow table in memory read in place of ``input.path`` (the same
+    rows give the same frame either way). With ``holdout`` False no row is held out and every row
+    is a training row in one of the proxy folds.
 
     Row ids, the fingerprint, the holdout and the folds do not depend on ``execution.batch_rows``.
     The float32 feature matrix is held in memory when it fits in ``execution.feature_memory_mb``;
@@ -323,7 +364,7 @@ def load_table(config: Config) -> RowFrame:
     """
     path = config.input.path
     inp, ex = config.input, config.execution
-    dataset = _dataset(path)
+    dataset = _dataset(path, table)
     numeric, categorical = _feature_columns(dataset.schema, config, path)
     head_cols = [c for c in (inp.label, inp.id, *RESERVED, *inp.segments) if c is not None and c in dataset.schema.names]
     head = _read(dataset, path, list(dict.fromkeys(head_cols)))
@@ -383,7 +424,10 @@ def load_table(config: Config) -> RowFrame:
         y = pd.Categorical(label, categories=classes).codes.astype(np.int32)
         bins = None
 
-    holdout, fold = split_rows(row_id, y if bins is None else bins, config.holdout.fraction, config.proxy.folds, config.seed)
+    logger.info("load: %d rows, %d features (%d categorical), %s task, features %s", n, n_features, len(categorical),
+                kind, "in memory" if in_memory else "read in batches")
+    holdout, fold = split_rows(row_id, y if bins is None else bins, config.holdout.fraction if holdout else 0.0,
+                               config.proxy.folds, config.seed)
     release_memory()
     return RowFrame(
         row_id=row_id, y=y, classes=classes, X=X,

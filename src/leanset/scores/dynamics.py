@@ -25,6 +25,7 @@ proxy-target agreement (``agreement``).
 
 from __future__ import annotations
 
+import logging
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -41,6 +42,8 @@ from ..models.proxy import FittedProxy, binned_dataset, fit_proxy, n_checkpoints
 from ..load.memory import release_memory
 from ..load.rows import RowFrame
 from ..models.target import fit_target
+
+logger = logging.getLogger(__name__)
 
 CHUNK = 65_536
 
@@ -402,6 +405,7 @@ def score(frame: RowFrame, config: Config) -> Scores:
         info["stability"] = stability(runs)
     del runs
     table["suspect_label"] = suspect
+    logger.info("score: %d training rows, %d folds x %d repeats of the %s proxy", len(y), pc.folds, pc.repeats, pc.family)
     return Scores(table=table, proxies=proxies, checkpoints=n_checkpoints(pc), info=info)
 
 

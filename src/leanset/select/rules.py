@@ -21,6 +21,7 @@ the same share of its size; both respect ``min(n_c, class_floor)`` and ``n_c``.
 
 from __future__ import annotations
 
+import logging
 from dataclasses import dataclass, field, replace
 
 import numpy as np
@@ -28,6 +29,8 @@ import pandas as pd
 
 from ..config import Config, SelectionConfig
 from ..difficulty import class_percentile
+
+logger = logging.getLogger(__name__)
 
 REASONS = {
     "keep:stratum": "kept to fill its class's budget evenly across difficulty strata (stratified)",
@@ -327,6 +330,7 @@ def select_frame(frame, scores, config: Config, selection: SelectionConfig | Non
     quotas over classes (label bins on a regression table) and segments, duplicates by feature
     hash, suspected label errors; ``selection`` replaces ``config.selection`` when given."""
     train, selection = frame.train, selection or config.selection
+    logger.info("select: %s on %s, fraction %s of %d training rows", selection.strategy, selection.score, selection.fraction, len(train))
     return select_rows(scores.difficulty(selection.score), frame.groups[train], selection, config.seed, suspect=scores.suspects(),
                        segments=None if frame.segments is None else frame.segments[train], X=frame.feature_hash[train])
 

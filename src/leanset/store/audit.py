@@ -379,3 +379,34 @@ def _tidy(data: Any) -> Any:
 def as_json(data: Any) -> str:
     """``data`` as indented JSON, NaN as null."""
     return json.dumps(_tidy(data), indent=2, allow_nan=False, default=str)
+
+
+def find(store: str | Path, column: str, value: str, run: str | None = None) -> str:
+    """The row id of the one row of a run's input table whose ``column`` holds ``value`` (as text).
+
+    For tables without an id column, whose row ids are derived from the rows' content: the run's
+    input table is read with the run's config, so its rows get the ids the run gave them.
+
+    Raises
+    ------
+    StoreError
+        When the column is absent, or no row or more than one row holds the value.
+    """
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    from ..load.table import load_table
+
+    target = Store(store).resolve(run or "latest")
+    config = Config.model_validate(target["config"])
+    frame = load_table(config)
+    if column not in frame.source.column_names:
+        raise StoreError(f"{config.input.path}: no column '{column}' (columns: {', '.join(frame.source.column_names[:20])}); fix --find")
+    hits = pc.indices_nonzero(pc.equal(frame.source.column(column).cast(pa.string()), pa.scalar(value, pa.string()))).to_numpy()
+    if len(hits) == 0:
+        raise StoreError(f"{config.input.path}: no row has {column} = {value!r} (compared as text); check the value")
+    if len(hits) > 1:
+        ids = ", ".join(str(frame.row_id[i]) for i in hits[:3])
+        raise StoreError(f"{config.input.path}: {len(hits)} rows have {column} = {value!r} (ids {ids}, …); "
+                         "pass one of the ids as ROW_ID, or a column whose values are unique")
+    return str(frame.row_id[int(hits[0])])

@@ -12,6 +12,7 @@ import contextlib
 import fcntl
 import hashlib
 import json
+import logging
 import os
 import platform
 import shutil
@@ -31,6 +32,8 @@ from .audit import published_runs
 from ..config import SCORE_NAMES, Config
 from ..errors import StoreError
 from ..difficulty import DIFFICULTY_SIGN, class_percentile
+
+logger = logging.getLogger(__name__)
 
 if TYPE_CHECKING:  # the audit commands import this module: keep the model libraries out of their start-up
     from ..scores.dynamics import Scores
@@ -336,6 +339,7 @@ def _write_locked(frame, scores, selection, verdict, config, timings, parent, ex
         run["timings"] = {**timings, "write": round(time.perf_counter() - t0, 3)}
         _write_json(tmp / "run.json", run)
         os.rename(tmp, runs / run_id)
+        logger.info("write: run %s published, %d kept of %d training rows", run_id, counts["keep"], len(frame.train))
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
