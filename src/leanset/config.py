@@ -44,7 +44,7 @@ class HoldoutConfig(_Section):
 
 class ProxyConfig(_Section):
     family: Literal["gbdt", "linear"] = "gbdt"
-    folds: int = Field(5, ge=2, le=20)
+    folds: int = Field(2, ge=2, le=20)
     rounds: int = Field(60, ge=2)
     checkpoint_every: int = Field(5, ge=1)
     epochs: int = Field(10, ge=2)
@@ -53,11 +53,12 @@ class ProxyConfig(_Section):
     repeats: int = Field(1, ge=1, le=20)
     residual_band: float | None = Field(None, gt=0)
     residual_quantile: float = Field(0.25, gt=0, lt=1)
-    threshold_samples: bool = True
+    threshold_samples: bool | Literal["auto"] = "auto"
     threshold_percentile: float = Field(90.0, gt=0, lt=100)
     threshold_share: float = Field(0.1, gt=0, le=0.5)
     threshold_rounds: int | None = Field(None, ge=2)
     agreement_rows: int = Field(2000, ge=0)
+    agreement_rounds: int | None = Field(50, ge=2)
     agreement_floor: float = Field(0.3, ge=-1, le=1)
 
 
@@ -98,6 +99,9 @@ class VerifyConfig(_Section):
     random_repeats: int = Field(3, ge=1)
     bootstrap: int = Field(1000, ge=100)
     confidence: float = Field(0.95, gt=0.5, lt=1)
+    every: int = Field(1, ge=1)
+    max_new_rows: float | None = Field(0.1, ge=0, le=1)
+    max_churn: float | None = Field(0.1, ge=0, le=1)
 
 
 class ExecutionConfig(_Section):

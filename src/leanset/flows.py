@@ -25,7 +25,7 @@ from .config import Config, load_config  # noqa: E402
 from .frontier import FractionEvaluator, frontier_files, search_fraction, sweep  # noqa: E402
 from .scores import Scores, agreement, score  # noqa: E402
 from .select import Selection, select_frame, stabilise  # noqa: E402
-from .store import ParentRun, read_parent, store_lock, write_run  # noqa: E402
+from .store import CarriedVerdict, ParentRun, VerifyPlan, plan_verification, read_parent, store_lock, write_run  # noqa: E402
 from .table import RowFrame, load_table  # noqa: E402
 from .verify import Verdict, verify  # noqa: E402
 
@@ -74,6 +74,11 @@ def verify_task(frame: RowFrame, selection: Selection, config: Config, evaluator
                   config.target, config.verify, config.seed,
                   None if frame.segments is None else frame.segments[hold], frame.segment_names,
                   full=None if evaluator is None else (evaluator.full_model_, evaluator.full_seconds_))
+
+
+@task(name="plan-verify", cache_policy=NO_CACHE)
+def plan_task(frame: RowFrame, selection: Selection, config: Config) -> VerifyPlan:
+    return plan_verification(config, frame.row_id[frame.train], selection.keep)
 
 
 @task(name="fit-full", cache_policy=NO_CACHE)
@@ -139,7 +144,11 @@ def _pipeline(config_path: str, overrides: dict[str, Any] | None, wait: float, f
         selection = timed("select", select_task, frame, scores, config)
         if parent is not None:
             selection = timed("stabilise", stabilise_task, frame, scores, selection, parent, config)
-        verdict = timed("verify", verify_task, frame, selection, config, evaluator)
+        # the cadence applies when no full-data fit was made for the fraction search or the frontier
+        plan = plan_task(frame, selection, config) if evaluator is None else VerifyPlan(True, "full-data fit already made")
+        extra["verification"] = {"verified": plan.verify, "reason": plan.reason}
+        verdict = (timed("verify", verify_task, frame, selection, config, evaluator) if plan.verify
+                   else CarriedVerdict(plan))
         if frontier:
             table = timed("frontier", frontier_task, evaluator, config)
             extra["frontier"] = table.to_dict(orient="records")
