@@ -222,7 +222,7 @@ def plan_verification(config: Config, row_id: np.ndarray, keep: np.ndarray) -> V
     since = len(runs) - 1 - fresh[-1]
     m = pq.read_table(config.store / "runs" / source["run_id"] / "manifest.parquet", columns=["row_id", "decision"])
     before = ParentRun(source["run_id"], m.column("row_id").to_numpy(zero_copy_only=False).astype(object),
-                       m.column("decision").to_numpy(zero_copy_only=False).astype(object), np.empty(0))
+                       m.column("decision").to_numpy(zero_copy_only=False).astype(object), np.full(m.num_rows, np.nan))
     code, _ = before.align(np.asarray(row_id, dtype=object))
     known = code >= 0
     changed = int((code[known] != keep[known].astype(np.int8)).sum())
