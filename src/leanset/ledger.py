@@ -92,14 +92,16 @@ def ledger_lines(cost: dict[str, Any]) -> list[tuple[str, str]]:
         return rows
     source = f" (measured in run {cost['target_fits_from']})" if cost.get("target_fits_from") else ""
     saving = cost["saving_per_fit"]
-    rows.append(("target fit", f"all rows {fits['full']:.2f} s · kept {fits['kept']:.2f} s · random same size "
+    speedup = f" (speed-up {cost['speedup_per_fit']:.2f}× per fit)" if cost.get("speedup_per_fit") else ""
+    rows.append(("target fit", f"all rows {fits['full']:.2f} s · kept {fits['kept']:.2f} s{speedup} · random same size "
                  f"{fits.get('random', float('nan')):.2f} s{source}"))
     if cost["break_even_fits"] is None:
         rows.append(("break-even", f"never: a fit on the kept rows saves nothing ({saving:+.2f} s per fit)"))
     else:
         rows.append(("break-even", f"{saving:.2f} s saved per later fit on the kept rows; the selection pays for itself "
                      f"after {cost['break_even_fits']} fits, {cost['break_even_fits_with_verification']} counting "
-                     f"the verification; end to end {cost['end_to_end_speedup']:.2f}× on one fit"))
+                     f"the verification; end-to-end speed-up on one fit {cost['end_to_end_speedup']:.2f}× "
+                     "(full fit / (score + select + kept fit))"))
     if not cost["saves_time"]:
         rows.append(("no real saving", f"pruning does not save time here: the kept-row fit takes {fits['kept']:.2f} s "
                      f"against {fits['full']:.2f} s on all rows, because the target's cost barely shrinks with rows at "

@@ -36,11 +36,11 @@ def summary(run: dict[str, Any], run_dir: str | Path) -> Table:
     cfg = run["config"]["selection"]
     table.add_row("selection", f"{cfg['strategy']} on {cfg['score']}, {cfg['quotas']} class quotas")
     lo, hi = v["ci"]
-    if v.get("carried"):
+    carried = v.get("carried")
+    if carried:  # never shown as a fresh verdict: the figures below are the source run's
         table.add_row("verdict", carried_text(v))
-    table.add_row("verdict" if not v.get("carried") else "carried figures",
-                  f"{v['status'].upper() if not v.get('carried') else v['carried']['status'].upper()}: "
-                  f"Δ {v['metric']} = {v['delta']:+.4f}, "
+    table.add_row("carried verdict" if carried else "verdict",
+                  f"{(carried or v)['status'].upper()}: Δ {v['metric']} = {v['delta']:+.4f}, "
                   f"{run['config']['verify']['confidence']:.0%} CI [{lo:+.4f}, {hi:+.4f}], tolerance {v['tolerance']}")
     table.add_row(v["metric"], f"full {v['full']:.4f} · kept {v['kept']:.4f} · random same size {v['random']:.4f}")
     table.add_row("class recall", " · ".join(f"{name} {r['full']:.2f}→{r['kept']:.2f}" for name, r in v["per_class_recall"].items()))
