@@ -177,7 +177,7 @@ class VerifyPlan:
     ----------
     verify : bool
     reason : str
-        Why, in words (``every run``, ``5 of 5 runs since the last verified run``, ``new rows ...``).
+        Why, in words (``every run``, ``run 5 of every 5 since the last verified run``, ``new rows ...``).
     source : dict or None
         run.json of the last verified run of the lineage (None when there is none).
     runs_since : int
@@ -211,7 +211,7 @@ def plan_verification(config: Config, row_id: np.ndarray, keep: np.ndarray) -> V
         This run's decisions on them.
     """
     vc = config.verify
-    if vc.every == 1 and vc.max_new_rows is None and vc.max_churn is None:
+    if vc.every == 1:  # the thresholds can only force a verification that is due anyway
         return VerifyPlan(True, "every run")
     mine = lineage(config)
     runs = [r for r in published_runs(config.store) if r.get("lineage") == mine]
