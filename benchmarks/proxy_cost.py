@@ -1,6 +1,6 @@
 """The score stage's cost against target fits, and how far the cheap default proxy moves each score.
 
-On an invented table (``leanset.bench.make_table``) it runs, in one process: the score stage with
+On an invented table (``leanset.tools.bench.make_table``) it runs, in one process: the score stage with
 the earlier proxy settings (5 folds, every row in every round, 255 bins, threshold-sample passes),
 the same on another fold split (how far scores move by chance), the default proxy, then one fit of
 the default target (300 rounds) and of an expensive one (1,000 rounds, 127 leaves, learning rate
@@ -19,10 +19,10 @@ import time
 import numpy as np
 from scipy import stats
 
-from leanset.bench import machine, make_table
+from leanset.tools.bench import machine, make_table
 from leanset.config import SCORE_NAMES, Config, TargetConfig
-from leanset.scores import _refold, score
-from leanset.verify import fit_target
+from leanset.scores.dynamics import _refold, score
+from leanset.models.target import fit_target
 
 EARLIER = {"folds": 5, "threshold_samples": True,
            "params": {"bagging_fraction": 1.0, "bagging_freq": 0, "max_bin": 255, "bin_construct_sample_cnt": 200_000}}

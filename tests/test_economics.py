@@ -4,8 +4,8 @@
 import numpy as np
 from scipy import stats
 
-from leanset.bench import table_chunks
-from leanset.economics import INFORMATIVE, economics_chunks, economics_lines
+from leanset.tools.bench import table_chunks
+from leanset.tools.economics import INFORMATIVE, economics_chunks, economics_lines
 
 
 def test_table_flips_the_share_asked_and_mixes_the_extra_columns():

@@ -7,7 +7,7 @@ verification, then with it.
 
 import pytest
 
-from leanset.ledger import cost_ledger, ledger_lines
+from leanset.report.ledger import cost_ledger, ledger_lines
 
 TIMINGS = {"load": 1.0, "score": 4.0, "agreement": 0.5, "select": 0.5, "verify": 20.0, "write": 1.0}
 

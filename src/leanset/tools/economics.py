@@ -1,6 +1,6 @@
 """``leanset bench economics``: does pruning pay on a large table with an expensive target?
 
-The table is invented: ``rows / copies`` prototype rows from :func:`leanset.bench.table_chunks`
+The table is invented: ``rows / copies`` prototype rows from :func:`leanset.tools.bench.table_chunks`
 (a seeded linear rule with Gumbel label noise), each drawn ``copies`` times on average with a
 little jitter (redundant rows), ``redundant`` extra columns that are noisy mixes of the first
 ones (redundant features), and a share ``flip`` of labels moved to another class. The run is the
@@ -21,7 +21,7 @@ import pyarrow.parquet as pq
 import yaml
 
 from .bench import CHUNK_ROWS, machine, table_chunks
-from .errors import ConfigError
+from ..errors import ConfigError
 
 #: Columns of the rule; the others are mixes of these.
 INFORMATIVE = 20
