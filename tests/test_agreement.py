@@ -106,3 +106,26 @@ def test_agreement_off(tmp_path):
     cfg, frame, s = _table(tmp_path, load_breast_cancer)
     off = cfg.model_copy(update={"proxy": cfg.proxy.model_copy(update={"agreement_rows": 0})})
     assert agreement(frame, s, off) is None
+
+
+def test_agreement_fits_a_shorter_target_at_a_raised_rate():
+    # proxy.agreement_rounds caps the target's rounds and raises its learning rate by the same factor
+    # (a leanset choice: rounds x rate held about constant, common practice, no source)
+    from leanset.config import TargetConfig
+    from leanset.scores.dynamics import agreement_target
+
+    short = agreement_target(TargetConfig(params={"num_boost_round": 300, "learning_rate": 0.05, "num_leaves": 31}), 50)
+    assert short.params == {"num_boost_round": 50, "learning_rate": pytest.approx(0.3), "num_leaves": 31}
+    default = agreement_target(TargetConfig(), 50)  # LightGBM target defaults: 300 rounds at 0.05
+    assert default.params == {"num_boost_round": 50, "learning_rate": pytest.approx(0.3)}
+    assert agreement_target(TargetConfig(params={"n_estimators": 1000, "learning_rate": 0.05}), 50).params["learning_rate"] == 0.5
+    few = TargetConfig(params={"num_boost_round": 40})
+    assert agreement_target(few, 50) is few and agreement_target(few, None) is few
+    sk = TargetConfig(family="sklearn", estimator="sklearn.linear_model.LogisticRegression")
+    assert agreement_target(sk, 50) is sk
+
+
+def test_agreement_reports_its_seconds(tmp_path):
+    cfg, frame, s = _table(tmp_path, load_breast_cancer)
+    ag = agreement(frame, s, cfg)
+    assert ag["seconds"] > 0

@@ -55,7 +55,7 @@ def table(tmp_path_factory):
 def setup(table, tmp_path_factory):
     """Config (dask engine, ``data_parallel`` fits, partitions of at most 100 rows) and frame of the breast_cancer table."""
     tmp = tmp_path_factory.mktemp("cfg")
-    path = write_config(tmp, table, execution__engine="dask", execution__batch_rows=100, execution__dask_fits="data_parallel")
+    path = write_config(tmp, table, execution__engine="dask", execution__batch_rows=100, execution__dask_fits="data_parallel", proxy__threshold_samples=True)
     config = load_config(path)
     return path, config, load_table(config)
 

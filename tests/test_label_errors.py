@@ -34,7 +34,7 @@ def _flipped_table(tmp_path, name: str, seed: int = 20240601, rate: float = 0.1)
     path = tmp_path / f"{name}.parquet"
     d.to_parquet(path, index=False)
     cfg = Config.model_validate({"input": {"path": str(path), "label": "label", "id": "rid"},
-                                 "proxy": {"params": ONE_THREAD}, "seed": 0})
+                                 "proxy": {"params": ONE_THREAD, "threshold_samples": True}, "seed": 0})
     frame = load_table(cfg)
     flipped = np.isin(np.arange(n), flip)[frame.train]
     return cfg, frame, flipped

@@ -253,3 +253,46 @@ def test_batch_and_memory_settings_leave_the_lineage_but_the_engine_does_not():
     one = Config.model_validate(base)
     assert lineage(one) == lineage(Config.model_validate({**base, "execution": {"batch_rows": 1000, "feature_memory_mb": 0}}))
     assert lineage(one) != lineage(Config.model_validate({**base, "execution": {"engine": "dask"}}))
+
+
+def test_cadence_carries_the_last_verdict_then_new_rows_force_a_fresh_one(prefect_api, tmp_path):
+    """verify.every 3: the second run carries the first run's verdict, marked carried with its source
+    run; the third run would carry too, but its new rows (> verify.max_new_rows) force a verification.
+    New-row counts are checked against a pandas set difference of the input ids."""
+    folder = tmp_path / "table"
+    cfg = config(tmp_path, folder, input__id="rid", verify__every=3, verify__max_new_rows=0.3, verify__max_churn=1.0)
+    part(folder, "day0.parquet", 0, 600, seed=10)
+    run_ok(cfg)
+    run_ok(cfg)  # the same rows: within every threshold
+    part(folder, "day1.parquet", 600, 400, seed=11)
+    third = run_ok(cfg)
+    dirs = published(tmp_path / "store")
+    first, second, last = (run_json(d) for d in dirs)
+    assert first["verification"]["verified"] and first["verdict"]["status"] != "carried"
+    v = second["verdict"]
+    assert second["verification"]["verified"] is False and v["status"] == "carried"
+    c = v["carried"]
+    assert c["from_run"] == first["run_id"] and c["status"] == first["verdict"]["status"] and c["age_runs"] == 1
+    assert c["drift"]["new_rows"] == 0 and c["age_seconds"] >= 0
+    assert second["cost"]["target_fits_from"] == first["run_id"] and "verify" not in second["timings"]
+    assert second["cost"]["target_fit_seconds"]["full"] == pytest.approx(first["verdict"]["train_seconds"]["full"], abs=1e-3)
+    assert not list((dirs[1] / "models").glob("target_*"))  # no target trained on a carried run
+    # the third run: 400 new ids of 1,000 (pandas), 40 % of the training rows > 30 %
+    new_ids = _ids(folder) - set(manifest(dirs[0])["row_id"])
+    assert len(new_ids) == 400
+    assert last["verification"]["verified"] and "new rows" in last["verification"]["reason"]
+    assert last["verdict"]["status"] in ("pass", "fail", "inconclusive") and "carried" not in last["verdict"]
+    # a carried verdict is never shown as a fresh pass
+    shown = cli("runs", "--store", tmp_path / "store").output
+    assert "carried" in shown
+    assert "CARRIED, not verified on this run" in second_summary(dirs[1]) and "leanset cost" in third.output
+
+
+def second_summary(run_dir) -> str:
+    from rich.console import Console
+
+    from leanset.report import read_run, summary
+
+    console = Console(width=250, record=True)
+    console.print(summary(read_run(run_dir), run_dir))
+    return console.export_text()

@@ -93,8 +93,8 @@ def _duplicate_id(tmp_path):
 
 def _tiny_class(tmp_path):
     d = iris()
-    d.loc[[0, 1, 2], "species"] = "rare"  # 3 rows; 5 folds + 1 holdout row need 6
-    return write_parquet(tmp_path, d), {}, ["'rare'", "3 rows"]
+    d.loc[[0, 1], "species"] = "rare"  # 2 rows; 2 folds (the default) + 1 holdout row need 3
+    return write_parquet(tmp_path, d), {}, ["'rare'", "2 rows"]
 
 
 def _list_feature(tmp_path):

@@ -482,6 +482,40 @@ def bench_scale_command(
         _fail(exc)
 
 
+@bench_app.command("economics")
+def bench_economics_command(
+    rows: int = typer.Option(1_000_000, min=1000, help="Rows of the invented table."),
+    features: int = typer.Option(30, min=2, help="Float32 feature columns (20 informative, the rest mixes of them)."),
+    classes: int = typer.Option(4, min=2, help="Label classes."),
+    flip: float = typer.Option(0.03, help="Share of labels moved to another class."),
+    copies: int = typer.Option(10, min=1, help="Rows per prototype on average (row redundancy)."),
+    rounds: int = typer.Option(1000, min=1, help="Target boosting rounds."),
+    leaves: int = typer.Option(127, min=2, help="Target num_leaves."),
+    threads: int = typer.Option(int(os.environ.get("OMP_NUM_THREADS", "1") or 1), min=1, help="Target num_threads (default OMP_NUM_THREADS)."),
+    random_repeats: int = typer.Option(1, min=1, help="verify.random_repeats."),
+    dir: Optional[Path] = typer.Option(None, "--dir", help="Folder for the table, config and store (kept); default a temporary folder."),
+    seed: int = typer.Option(0, help="Seed of the table and the run."),
+) -> None:
+    """Whole pipeline (fraction auto) on an invented redundant table with an expensive target; the last line is end_to_end_speedup=…"""
+    import tempfile
+
+    from .tools.economics import economics_config, economics_lines, write_economics_table
+    from .flows import prune_flow
+    from .report.summary import read_run
+
+    os.environ.setdefault("PREFECT_LOGGING_LEVEL", "WARNING")
+    with tempfile.TemporaryDirectory(prefix="leanset-economics-") as scratch:
+        folder = Path(dir) if dir is not None else Path(scratch)
+        try:
+            table = write_economics_table(folder / f"table-{rows}-{features}-{classes}-{seed}", rows, features, classes,
+                                          flip, copies, seed)
+            run_dir = prune_flow(str(economics_config(folder, table, rounds, leaves, threads, random_repeats, seed)))
+        except LeansetError as exc:
+            _fail(exc)
+        for line in economics_lines(read_run(run_dir), rows):
+            typer.echo(line)
+
+
 def main() -> None:
     """Console-script entry point.
 

@@ -57,7 +57,7 @@ class ProxyConfig(_Section):
     family: Literal["gbdt", "linear"] = Field("gbdt", description=(
         "`gbdt` = LightGBM; `linear` = SGD logistic regression on standardised numeric and one-hot categorical "
         "features."))
-    folds: int = Field(5, ge=2, le=20, description="Cross-fitting folds K.")
+    folds: int = Field(2, ge=2, le=20, description="Cross-fitting folds K (2 by default: the cheap proxy, docs/economics.md).")
     rounds: int = Field(60, ge=2, description="`gbdt`: boosting rounds of each fold model.")
     checkpoint_every: int = Field(5, ge=1, description=(
         "`gbdt`: boosting rounds between two checkpoints at which the training dynamics are read."))
@@ -74,8 +74,9 @@ class ProxyConfig(_Section):
         "median(y)| over training rows."))
     residual_quantile: float = Field(0.25, gt=0, lt=1, description=(
         "Regression: quantile of |y − median(y)| that sets the band when `residual_band` is unset."))
-    threshold_samples: bool = Field(True, description=(
-        "Flag suspected label errors by AUM threshold samples (two extra proxy fits)."))
+    threshold_samples: bool | Literal["auto"] = Field("auto", description=(
+        "Flag suspected label errors by AUM threshold samples (two extra proxy fits); `auto` runs them only when "
+        "`selection.drop_suspect_labels` is on."))
     threshold_percentile: float = Field(90.0, gt=0, lt=100, description=(
         "Percentile of the threshold rows' AUM that sets the suspected-label cut-off."))
     threshold_share: float = Field(0.1, gt=0, le=0.5, description=(
@@ -84,6 +85,9 @@ class ProxyConfig(_Section):
         "`gbdt`: boosting rounds of each threshold-sample pass; when unset, half of `rounds`."))
     agreement_rows: int = Field(2000, ge=0, description=(
         "Proxy–target agreement: rows sampled to cross-fit the target on (0 turns the check off)."))
+    agreement_rounds: int | None = Field(50, ge=2, description=(
+        "Proxy–target agreement: at most this many target boosting rounds on the sample, the learning rate raised "
+        "by the same factor (capped at 0.5); unset keeps the target's own rounds."))
     agreement_floor: float = Field(0.3, ge=-1, le=1, description=(
         "Spearman correlation between proxy difficulty and target loss below which the summary warns (a weak "
         "correlation: common practice, no source)."))
@@ -152,6 +156,12 @@ class VerifyConfig(_Section):
         "Same-size uniform random subsets trained for the baseline; their spread widens the random interval."))
     bootstrap: int = Field(1000, ge=100, description="Paired bootstrap resamples of the holdout.")
     confidence: float = Field(0.95, gt=0.5, lt=1, description="Level of the bootstrap intervals.")
+    every: int = Field(1, ge=1, description=(
+        "Verify every Nth run of a lineage; the runs between carry the last verdict, marked `carried`."))
+    max_new_rows: float | None = Field(0.1, ge=0, le=1, description=(
+        "A fresh verification is forced when the share of new rows since the last verified run exceeds this."))
+    max_churn: float | None = Field(0.1, ge=0, le=1, description=(
+        "A fresh verification is forced when the churn of decisions since the last verified run exceeds this."))
 
 
 class ExecutionConfig(_Section):

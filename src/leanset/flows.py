@@ -38,7 +38,8 @@ from .preflight import preflight  # noqa: E402
 from .scores.cache import cached_scores  # noqa: E402
 from .scores.dynamics import Scores, agreement, score  # noqa: E402
 from .select.rules import Selection, select_frame, stabilise  # noqa: E402
-from .store.publish import ParentRun, read_parent, store_lock, write_run  # noqa: E402
+from .store.publish import (CarriedVerdict, ParentRun, VerifyPlan, plan_verification, read_parent,  # noqa: E402
+                            store_lock, write_run)
 from .verify.frontier import FractionEvaluator, frontier_files, search_fraction, sweep  # noqa: E402
 from .verify.stats import Verdict, verify  # noqa: E402
 
@@ -120,6 +121,11 @@ def verify_task(frame: RowFrame, selection: Selection, config: Config, evaluator
     return verdict
 
 
+@task(name="plan-verify", cache_policy=NO_CACHE)
+def plan_task(frame: RowFrame, selection: Selection, config: Config) -> VerifyPlan:
+    return plan_verification(config, frame.row_id[frame.train], selection.keep)
+
+
 @task(name="fit-full", cache_policy=NO_CACHE)
 @_stage("fit-full")
 def full_fit_task(frame: RowFrame, scores: Scores, config: Config) -> FractionEvaluator:
@@ -164,7 +170,7 @@ def _score_in_flow(frame: RowFrame, config: Config, use_cache: bool = True) -> S
 
 #: The stages as Prefect tasks (inside a flow) ...
 TASKS = SimpleNamespace(load=load_task, parent=parent_task, score=_score_in_flow, agreement=agreement_task,
-                        fit_full=full_fit_task, search=search_task, select=select_task, stabilise=stabilise_task,
+                        fit_full=full_fit_task, search=search_task, select=select_task, stabilise=stabilise_task, plan=plan_task,
                         verify=verify_task, frontier=frontier_task, write=write_task)
 #: ... and as the plain functions they call, for a run without Prefect (``leanset.prune``).
 PLAIN = SimpleNamespace(**{name: t.fn for name, t in vars(TASKS).items() if name != "score"},
@@ -202,7 +208,10 @@ def run_stages(config: Config, stages: SimpleNamespace = TASKS, wait: float = 0.
             selection = stages.select(frame, scores, config)
             if parent is not None:
                 selection = stages.stabilise(frame, scores, selection, parent, config)
-            verdict = stages.verify(frame, selection, config, evaluator)
+            # the cadence applies when no full-data fit was made for the fraction search or the frontier
+            plan = stages.plan(frame, selection, config) if evaluator is None else VerifyPlan(True, "full-data fit already made")
+            extra["verification"] = {"verified": plan.verify, "reason": plan.reason}
+            verdict = stages.verify(frame, selection, config, evaluator) if plan.verify else CarriedVerdict(plan)
             files: dict[str, bytes] = {}
             if frontier:
                 front = stages.frontier(evaluator, config)

@@ -10,6 +10,8 @@ from rich import box
 from rich.table import Table
 from rich.text import Text
 
+from .ledger import ledger_lines
+
 CAUTION = ("Pruning can hide harm to small groups and rare cases: check per-group metrics, keep a human "
            "review for high-stakes uses, and follow local data-retention rules. The input table is untouched.")
 
@@ -34,7 +36,11 @@ def summary(run: dict[str, Any], run_dir: str | Path) -> Table:
     cfg = run["config"]["selection"]
     table.add_row("selection", f"{cfg['strategy']} on {cfg['score']}, {cfg['quotas']} class quotas")
     lo, hi = v["ci"]
-    table.add_row("verdict", f"{v['status'].upper()}: Δ {v['metric']} = {v['delta']:+.4f}, "
+    carried = v.get("carried")
+    if carried:  # never shown as a fresh verdict: the figures below are the source run's
+        table.add_row("verdict", carried_text(v))
+    table.add_row("carried verdict" if carried else "verdict",
+                  f"{(carried or v)['status'].upper()}: Δ {v['metric']} = {v['delta']:+.4f}, "
                   f"{run['config']['verify']['confidence']:.0%} CI [{lo:+.4f}, {hi:+.4f}], tolerance {v['tolerance']}")
     table.add_row(v["metric"], f"full {v['full']:.4f} · kept {v['kept']:.4f} · random same size {v['random']:.4f}")
     table.add_row("class recall", " · ".join(f"{name} {r['full']:.2f}→{r['kept']:.2f}" for name, r in v["per_class_recall"].items()))
@@ -58,9 +64,13 @@ def summary(run: dict[str, Any], run_dir: str | Path) -> Table:
         warn = " (below the floor: the proxy may be a poor stand-in for the target)" if ag["below_floor"] else ""
         table.add_row("proxy-target", f"Spearman {ag['spearman']:+.2f} between {ag['score']} and target out-of-fold loss "
                       f"on {ag['rows']:,} rows, floor {ag['floor']:+.2f}{warn}")
-    ts = v["train_seconds"]
-    table.add_row("target training", f"full {ts['full']:.2f}s · kept {ts['kept']:.2f}s · speed-up {v['speedup']:.1f}×")
-    table.add_row("stage seconds", " · ".join(f"{k} {s:.1f}" for k, s in run["timings"].items()))
+    if run.get("cost"):
+        for label, text in ledger_lines(run["cost"]):
+            table.add_row(label, text)
+    else:  # runs written before the cost ledger
+        ts = v["train_seconds"]
+        table.add_row("target training", f"full {ts['full']:.2f}s · kept {ts['kept']:.2f}s · speed-up {v['speedup']:.1f}×")
+        table.add_row("stage seconds", " · ".join(f"{k} {s:.1f}" for k, s in run["timings"].items()))
     ch = run.get("churn")
     if ch:
         table.add_row("churn", f"{ch['rows']:,} of {ch['rows_in_both']:,} rows changed decision since run {ch['parent_run']} "
@@ -69,6 +79,16 @@ def summary(run: dict[str, Any], run_dir: str | Path) -> Table:
     table.add_row("report", Text(str(Path(run_dir) / "report.html"), overflow="fold"))
     table.add_row("caution", CAUTION)
     return table
+
+
+def carried_text(v: dict[str, Any]) -> str:
+    """One line for a carried verdict: not verified on this run, whose verdict, how old, what drifted."""
+    c = v["carried"]
+    d = c.get("drift") or {}
+    hours = c["age_seconds"] / 3600
+    return (f"CARRIED, not verified on this run: the last verdict was {c['status'].upper()} in run {c['from_run']}, "
+            f"{c['age_runs']} run(s) and {hours:.1f} h ago; since then {d.get('new_rows', 0):,} new training rows "
+            f"({d.get('new_share', 0.0):.1%}) and {d.get('churn', 0.0):.1%} of decisions changed ({c['reason']})")
 
 
 def frontier_table(run: dict[str, Any]) -> Table:
@@ -87,8 +107,9 @@ def markdown_summary(run: dict[str, Any], run_dir: str | Path) -> str:
     """A short markdown summary of a run (the scheduled flow publishes it as a Prefect artifact)."""
     v, c = run["verdict"], run["counts"]
     lo, hi = v["ci"]
+    head = (f"**{carried_text(v)}**; its figures: " if v.get("carried") else f"**{v['status'].upper()}**: ")
     lines = [f"# leanset run `{run['run_id']}`", "",
-             f"**{v['status'].upper()}**: Δ {v['metric']} = {v['delta']:+.4f}, interval [{lo:+.4f}, {hi:+.4f}], "
+             f"{head}Δ {v['metric']} = {v['delta']:+.4f}, interval [{lo:+.4f}, {hi:+.4f}], "
              f"tolerance {v['tolerance']}", "",
              "| | |", "|---|---|",
              f"| rows in | {run['input']['rows']:,} ({c['train']:,} train, {c['holdout']:,} holdout) |",
@@ -98,6 +119,8 @@ def markdown_summary(run: dict[str, Any], run_dir: str | Path) -> str:
     ch = run.get("churn")
     if ch:
         lines.append(f"| churn | {ch['rows']:,} of {ch['rows_in_both']:,} ({ch['fraction']:.2%}) since `{ch['parent_run']}` |")
+    for label, text in ledger_lines(run["cost"]) if run.get("cost") else []:
+        lines.append(f"| {label} | {text} |")
     lines += [f"| report | `{Path(run_dir) / 'report.html'}` |", "", f"_{CAUTION}_"]
     return "\n".join(lines)
 

@@ -2,7 +2,7 @@
 
 The key hashes the table's fingerprint, the holdout and fold of every row, the config sections the
 score stage reads (``input`` but its path and segments, ``proxy``, ``execution`` but its batch and
-memory settings, ``seed``) and the versions of the libraries that compute the scores. A run at
+memory settings, ``seed``, and whether the AUM threshold-sample passes run) and the versions of the libraries that compute the scores. A run at
 another fraction, with another strategy or target, or a ``frontier`` after a ``run`` of the same
 config finds the scores of the earlier pass; any change to the rows or to those sections misses.
 Entries are written aside and renamed into place, so a killed run leaves none half-written.
@@ -24,8 +24,8 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ..config import Config
-from ..load.table import RowFrame
-from .dynamics import Scores
+from ..load.rows import RowFrame
+from .dynamics import Scores, wants_threshold_samples
 
 logger = logging.getLogger(__name__)
 
@@ -59,6 +59,8 @@ def score_key(frame: RowFrame, config: Config) -> str:
         "fold": hashlib.sha256(frame.fold.tobytes()).hexdigest(),
         "input": {k: v for k, v in data["input"].items() if k not in ("path", "segments")},
         "proxy": data["proxy"],
+        # with proxy.threshold_samples auto, whether the label-error passes run is a selection setting
+        "threshold_samples": wants_threshold_samples(config),
         "execution": {k: v for k, v in data["execution"].items() if k not in ("batch_rows", "feature_memory_mb")},
         "seed": config.seed,
         "versions": versions,

@@ -52,7 +52,8 @@ import pyarrow.parquet as pq
 from ..config import SCORE_NAMES, Config, ExecutionConfig, ProxyConfig
 from ..errors import ConfigError, InputError
 from ..models.proxy import FittedProxy, binary_logits, binned_dataset, fit_proxy, gbdt_params, n_checkpoints, proba_matrix
-from .dynamics import Dynamics, ResidualDynamics, Scores, aum_cutoff, margin, repeat_folds, residual_band, stability, threshold_config
+from .dynamics import (Dynamics, ResidualDynamics, Scores, aum_cutoff, margin, repeat_folds, residual_band, stability,
+                       threshold_config, wants_threshold_samples)
 from ..load.rows import RowFrame, encode_columns
 
 try:
@@ -426,7 +427,7 @@ def _score(frame: RowFrame, config: Config, client: Client) -> Scores:
     table["never_learned"] = np.logical_and.reduce([o["never_learned"] for o in runs])
     info: dict = {"repeats": pc.repeats, "stability": stability(runs) if pc.repeats > 1 else None, "dask_fits": fitter.choice}
     suspect = pd.array(np.full(len(y), pd.NA), dtype="boolean")
-    if pc.threshold_samples and n_classes:
+    if wants_threshold_samples(config) and n_classes:
         t0 = time.perf_counter()
         flags, info["label_errors"] = threshold_samples(fitter, y, n_classes, pc, config.seed)
         info["timings"] = {"threshold_samples": round(time.perf_counter() - t0, 3)}

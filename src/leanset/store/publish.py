@@ -17,7 +17,7 @@ import os
 import platform
 import shutil
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from importlib import metadata
 from pathlib import Path
@@ -32,6 +32,7 @@ from .audit import published_runs
 from ..config import SCORE_NAMES, Config
 from ..errors import StoreError
 from ..difficulty import DIFFICULTY_SIGN, class_percentile
+from ..report.ledger import cost_ledger
 
 logger = logging.getLogger(__name__)
 
@@ -113,6 +114,8 @@ def lineage(config: Config) -> str:
     data["selection"].pop("fraction")
     for key in ("batch_rows", "feature_memory_mb"):
         data["execution"].pop(key)
+    for key in CADENCE_KEYS:  # when to verify changes no decision
+        data["verify"].pop(key, None)
     return hashlib.sha256(json.dumps(data, sort_keys=True).encode()).hexdigest()[:16]
 
 
@@ -162,6 +165,105 @@ def read_parent(config: Config) -> ParentRun | None:
     pct = np.full(len(m), np.nan)
     pct[train] = class_percentile(DIFFICULTY_SIGN[name] * m[name].to_numpy(np.float64)[train], m["label"].to_numpy()[train])
     return ParentRun(run_id=run_id, row_id=m["row_id"].to_numpy(object), decision=m["decision"].to_numpy(object), percentile=pct)
+
+
+#: The ``verify`` keys of the cadence; they are left out of the lineage.
+CADENCE_KEYS = ("every", "max_new_rows", "max_churn")
+
+
+@dataclass(frozen=True)
+class VerifyPlan:
+    """Whether this run verifies, and if not, the verdict it carries.
+
+    Attributes
+    ----------
+    verify : bool
+    reason : str
+        Why, in words (``every run``, ``run 5 of every 5 since the last verified run``, ``new rows ...``).
+    source : dict or None
+        run.json of the last verified run of the lineage (None when there is none).
+    runs_since : int
+        Runs of the lineage published after ``source``.
+    drift : dict
+        ``new_rows`` (training rows absent from ``source``'s training rows), ``new_share`` (of this
+        run's training rows), ``churn_rows`` and ``churn`` (share of the training rows in both
+        whose keep/drop decision differs from ``source``'s).
+    """
+
+    verify: bool
+    reason: str
+    source: dict[str, Any] | None = None
+    runs_since: int = 0
+    drift: dict[str, Any] | None = None
+
+
+def plan_verification(config: Config, row_id: np.ndarray, keep: np.ndarray) -> VerifyPlan:
+    """Apply the cadence (``verify.every``, ``verify.max_new_rows``, ``verify.max_churn``) to this run.
+
+    The run verifies when it is the ``every``-th run since the lineage's last verified run, when
+    there is no verified run yet, or when the new training rows or the churn of keep/drop
+    decisions since that run exceed their thresholds; otherwise it carries that run's verdict.
+
+    Parameters
+    ----------
+    config : Config
+    row_id : ndarray of str, shape (n,)
+        Ids of this run's training rows.
+    keep : ndarray of bool, shape (n,)
+        This run's decisions on them.
+    """
+    vc = config.verify
+    if vc.every == 1:  # the thresholds can only force a verification that is due anyway
+        return VerifyPlan(True, "every run")
+    mine = lineage(config)
+    runs = [r for r in published_runs(config.store) if r.get("lineage") == mine]
+    fresh = [i for i, r in enumerate(runs) if not r["verdict"].get("carried")]
+    if not fresh:
+        return VerifyPlan(True, "no verified run in this lineage yet")
+    source = runs[fresh[-1]]
+    since = len(runs) - 1 - fresh[-1]
+    m = pq.read_table(config.store / "runs" / source["run_id"] / "manifest.parquet", columns=["row_id", "decision"])
+    before = ParentRun(source["run_id"], m.column("row_id").to_numpy(zero_copy_only=False).astype(object),
+                       m.column("decision").to_numpy(zero_copy_only=False).astype(object), np.full(m.num_rows, np.nan))
+    code, _ = before.align(np.asarray(row_id, dtype=object))
+    known = code >= 0
+    changed = int((code[known] != keep[known].astype(np.int8)).sum())
+    drift = {"new_rows": int((~known).sum()), "new_share": float((~known).mean()) if len(known) else 0.0,
+             "churn_rows": changed, "churn": changed / max(int(known.sum()), 1)}
+    if since + 1 >= vc.every:
+        return VerifyPlan(True, f"run {since + 1} of every {vc.every} since the last verified run", source, since, drift)
+    if vc.max_new_rows is not None and drift["new_share"] > vc.max_new_rows:
+        return VerifyPlan(True, f"new rows {drift['new_share']:.1%} above verify.max_new_rows {vc.max_new_rows:.1%}",
+                          source, since, drift)
+    if vc.max_churn is not None and drift["churn"] > vc.max_churn:
+        return VerifyPlan(True, f"churn {drift['churn']:.1%} above verify.max_churn {vc.max_churn:.1%}", source, since, drift)
+    return VerifyPlan(False, f"run {since + 1} of every {vc.every}; drift within thresholds", source, since, drift)
+
+
+@dataclass
+class CarriedVerdict:
+    """The verdict of an earlier run, carried by a run that skipped verification; never a fresh pass.
+
+    ``to_dict`` gives the earlier verdict with ``status`` ``carried`` and a ``carried`` entry: the
+    run it came from, its status there, its age (runs and seconds) and the drift since.
+    """
+
+    plan: VerifyPlan
+    models: dict = field(default_factory=dict)  # no target was trained
+
+    @property
+    def train_seconds(self) -> dict[str, float]:
+        """The target's fit seconds measured in the source run."""
+        return self.plan.source["verdict"]["train_seconds"]
+
+    def to_dict(self) -> dict[str, Any]:
+        """The source verdict, marked carried."""
+        src = self.plan.source
+        created = datetime.fromisoformat(src["created"])
+        age = (datetime.now(timezone.utc) - created).total_seconds()
+        return {**src["verdict"], "status": "carried",
+                "carried": {"from_run": src["run_id"], "status": src["verdict"]["status"], "age_runs": self.plan.runs_since + 1,
+                            "age_seconds": round(age, 1), "drift": self.plan.drift, "reason": self.plan.reason}}
 
 
 def churn(manifest: pa.Table, parent: ParentRun) -> dict[str, Any]:
@@ -243,7 +345,7 @@ def _write_json(path: Path, data: dict[str, Any]) -> None:
     path.write_text(json.dumps(data, indent=2, sort_keys=False, default=str) + "\n")
 
 
-def write_run(frame: RowFrame, scores: Scores, selection: Selection, verdict: Verdict,
+def write_run(frame: RowFrame, scores: Scores, selection: Selection, verdict: Verdict | CarriedVerdict,
               config: Config, timings: dict[str, float], wait: float = 0.0,
               parent: ParentRun | None = None, locked: bool = False,
               extra: dict[str, Any] | None = None, files: dict[str, bytes] | None = None) -> Path:
@@ -337,6 +439,9 @@ def _write_locked(frame, scores, selection, verdict, config, timings, parent, ex
         segments = {name: frame.source.column(name).to_numpy(zero_copy_only=False) for name in config.input.segments}
         (tmp / "report.html").write_text(render_html(run, manifest, segments))
         run["timings"] = {**timings, "write": round(time.perf_counter() - t0, 3)}
+        carried = run["verdict"].get("carried")
+        run["cost"] = cost_ledger(run["timings"], run["verdict"].get("train_seconds"),
+                                  carried["from_run"] if carried else None)
         _write_json(tmp / "run.json", run)
         os.rename(tmp, runs / run_id)
         logger.info("write: run %s published, %d kept of %d training rows", run_id, counts["keep"], len(frame.train))
