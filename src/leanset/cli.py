@@ -298,6 +298,41 @@ def restore_command(run: str = typer.Argument(..., help="Run id or unique prefix
     _emit(r, json_, table)
 
 
+@app.command("report")
+def report_command(run: str = typer.Argument(..., help="Run id, unique prefix, or latest."),
+                   list_: Optional[str] = typer.Option(None, "--list", help="Instead, print every row to review: suspect or conflict."),
+                   store: Path = _STORE, json_: bool = _JSON) -> None:
+    """(Re)build a run's report.html from its files, so older runs get the current page."""
+    from .audit import Store
+    from .errors import ConfigError
+
+    if list_ not in (None, "suspect", "conflict"):
+        _fail(ConfigError(f"--list {list_}: give suspect (suspected label errors) or conflict (conflicting duplicates)"))
+    try:
+        opened = Store(store)
+        run_dir = opened.path / "runs" / opened.resolve(run)["run_id"]
+    except LeansetError as exc:
+        _fail(exc)
+    if list_ is None:
+        from .report_html import build_report
+
+        Console().print(f"wrote {build_report(run_dir)}", soft_wrap=True, highlight=False)
+        return
+    import pyarrow.parquet as pq
+    from rich.table import Table
+
+    from .report_html import review_rows
+
+    rows = review_rows(pq.read_table(run_dir / "manifest.parquet"), list_).to_pylist()
+    table = Table(title=f"{len(rows):,} {list_} rows of run {run_dir.name}", title_justify="left", box=box.SIMPLE_HEAD)
+    cols = ["row_id", "label", "decision", "reason", "aum", "el2n", "confidence"]
+    for col in cols:
+        table.add_column(col)
+    for r in rows:
+        table.add_row(*(_fmt(r.get(c)) for c in cols))
+    _emit(rows, json_, table)
+
+
 @app.command("open-data")
 def open_data(
     name: str = typer.Argument(..., help="digits, breast_cancer, wine, iris or diabetes."),
