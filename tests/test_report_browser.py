@@ -174,7 +174,7 @@ def demo_page(prefect_api, tmp_path_factory):
 
 @pytest.mark.skipif(not Path(CHROMIUM).exists(), reason="chromium is not installed (.ci/run installs it)")
 def test_demo_report_in_headless_chromium(demo_page, tmp_path):
-    from leanset.report_html import SECTIONS
+    from leanset.report.html import SECTIONS
 
     shot = tmp_path / "report.png"
     t0 = time.perf_counter()

@@ -12,7 +12,7 @@ import pandas as pd
 import pyarrow.parquet as pq
 import pytest
 
-from leanset.report_html import OKABE_ITO, SECTIONS, render_html, seconds, share
+from leanset.report.html import OKABE_ITO, SECTIONS, render_html, seconds, share
 from store_helpers import cli, config, part, published, run_ok
 
 
@@ -166,7 +166,7 @@ def test_figures_match_the_manifest(run_dir):
 def test_strata_edges_bound_every_stratum(run_dir):
     """Coverage-centric selection (Zheng et al., ICLR 2023) bins difficulty into equal-width strata:
     the edges on the page must enclose each row's recorded stratum."""
-    from leanset.report_html import _score_view
+    from leanset.report.html import _score_view
 
     run = json.loads((run_dir / "run.json").read_text())
     manifest = pq.read_table(run_dir / "manifest.parquet")

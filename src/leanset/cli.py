@@ -67,13 +67,13 @@ def frontier(
 
 def _launch(config: Path, overrides: dict, wait: float, verbose: bool, frontier: bool) -> None:
     """Check config and input before any flow starts, run the flow, print the summary."""
-    from .table import check_input
+    from .load.table import check_input
 
     try:
         cfg = load_config(config, overrides)
         check_input(cfg)
         if cfg.execution.engine == "dask":
-            from .cluster import check_config
+            from .scores.cluster import check_config
 
             check_config(cfg)
     except LeansetError as exc:
@@ -83,7 +83,7 @@ def _launch(config: Path, overrides: dict, wait: float, verbose: bool, frontier:
         os.environ.setdefault("DASK_LOGGING__DISTRIBUTED", "warning")  # read by the scheduler and worker processes too
         logging.getLogger("distributed").setLevel(logging.WARNING)
     from .flows import frontier_flow, prune_flow
-    from .report import frontier_table, read_run, summary
+    from .report.summary import frontier_table, read_run, summary
 
     try:
         with _progress(enabled=not verbose):
@@ -164,7 +164,7 @@ _JSON = typer.Option(False, "--json", help="Print JSON for machines instead of a
 
 
 def _audit(fn, *args, **kwargs):
-    from . import audit
+    from .store import audit
 
     try:
         return getattr(audit, fn)(*args, **kwargs)
@@ -174,7 +174,7 @@ def _audit(fn, *args, **kwargs):
 
 def _emit(data, as_json: bool, table) -> None:
     if as_json:
-        from .audit import as_json as dump
+        from .store.audit import as_json as dump
 
         typer.echo(dump(data))
     else:
@@ -303,28 +303,18 @@ def report_command(run: str = typer.Argument(..., help="Run id, unique prefix, o
                    list_: Optional[str] = typer.Option(None, "--list", help="Instead, print every row to review: suspect or conflict."),
                    store: Path = _STORE, json_: bool = _JSON) -> None:
     """(Re)build a run's report.html from its files, so older runs get the current page."""
-    from .audit import Store
-    from .errors import ConfigError
+    from .store import page
 
-    if list_ not in (None, "suspect", "conflict"):
-        _fail(ConfigError(f"--list {list_}: give suspect (suspected label errors) or conflict (conflicting duplicates)"))
     try:
-        opened = Store(store)
-        run_dir = opened.path / "runs" / opened.resolve(run)["run_id"]
+        if list_ is None:
+            Console().print(f"wrote {page.rebuild(store, run)}", soft_wrap=True, highlight=False)
+            return
+        run_id, rows = page.review_list(store, run, list_)
     except LeansetError as exc:
         _fail(exc)
-    if list_ is None:
-        from .report_html import build_report
-
-        Console().print(f"wrote {build_report(run_dir)}", soft_wrap=True, highlight=False)
-        return
-    import pyarrow.parquet as pq
     from rich.table import Table
 
-    from .report_html import review_rows
-
-    rows = review_rows(pq.read_table(run_dir / "manifest.parquet"), list_).to_pylist()
-    table = Table(title=f"{len(rows):,} {list_} rows of run {run_dir.name}", title_justify="left", box=box.SIMPLE_HEAD)
+    table = Table(title=f"{len(rows):,} {list_} rows of run {run_id}", title_justify="left", box=box.SIMPLE_HEAD)
     cols = ["row_id", "label", "decision", "reason", "aum", "el2n", "confidence"]
     for col in cols:
         table.add_column(col)
@@ -339,7 +329,7 @@ def open_data(
     out: Path = typer.Option(..., help="Parquet file to write."),
 ) -> None:
     """Write one of scikit-learn's bundled datasets as a parquet table (label column: label)."""
-    from .datasets import export_bundled
+    from .tools.datasets import export_bundled
 
     try:
         path = export_bundled(name, out)
@@ -366,7 +356,7 @@ def bench_score_command(
     """Time the score stage against K plain fits of the same gbdt proxy; the last line is score_overhead_ratio=…"""
     from pydantic import ValidationError
 
-    from .bench import bench_score
+    from .tools.bench import bench_score
     from .config import Config
     from .errors import ConfigError
 
@@ -389,7 +379,7 @@ def bench_make_table_command(
     seed: int = typer.Option(0, help="Seed of the generator."),
 ) -> None:
     """Write an invented classification table as parquet files, chunk by chunk; same seed, same rows."""
-    from .bench import write_table
+    from .tools.bench import write_table
 
     try:
         written = write_table(out, rows, features, classes, seed, files)
@@ -415,7 +405,7 @@ def bench_scale_command(
     """Time load, score and select on parquet tables of growing size, one fresh process each; the last line is time_exponent=…"""
     from pydantic import ValidationError
 
-    from .bench import bench_scale
+    from .tools.bench import bench_scale
     from .config import Config
     from .errors import ConfigError
 

@@ -6,15 +6,15 @@ table of its figures beside it. Colours come from the Okabe–Ito palette and ev
 its own hatching or marker, so nothing is told apart by colour alone. The page loads nothing from
 anywhere. Every section is a ``<section id=…>`` named in ``SECTIONS``.
 
-:func:`render_html` builds the page from a run's run.json content and manifest; :func:`build_report`
-rebuilds it for any published run from the run directory alone, so older runs get the current page.
+:func:`render_html` builds the page from a run's run.json content and manifest (and, when given,
+the input rows to show and the store's other runs); ``leanset.store.page.build_report`` rebuilds it
+for any published run from the run directory, so older runs get the current page.
 """
 
 from __future__ import annotations
 
 import base64
 import io
-import json
 import re
 from pathlib import Path
 from typing import Any, Callable
@@ -22,10 +22,10 @@ from typing import Any, Callable
 import numpy as np
 import pyarrow as pa
 
-from .config import SCORE_NAMES
-from .errors import LeansetError
-from .scores import DIFFICULTY_SIGN
-from .select import REASONS
+from ..config import SCORE_NAMES
+from ..difficulty import DIFFICULTY_SIGN
+from ..errors import LeansetError
+from ..reasons import REASONS
 
 #: Section ids of report.html, in page order.
 SECTIONS = ("verdict", "metrics", "cost", "composition", "scores", "review", "churn", "frontier",
@@ -610,7 +610,7 @@ def _headline(run, manifest) -> dict[str, Any]:
 def _environment():
     from jinja2 import ChainableUndefined, Environment, PackageLoader, select_autoescape
 
-    env = Environment(loader=PackageLoader("leanset", "templates"), autoescape=select_autoescape(["html", "j2"], default=True),
+    env = Environment(loader=PackageLoader("leanset.report", "templates"), autoescape=select_autoescape(["html", "j2"], default=True),
                       undefined=ChainableUndefined, trim_blocks=True, lstrip_blocks=True)
     env.filters.update(share=share, seconds=seconds, number=number, signed=signed, interval=interval)
     return env
@@ -654,58 +654,3 @@ def render_html(run: dict[str, Any], manifest, segments: dict[str, Any] | None =
         "reasons": _reasons(manifest, draw), "config": _config(run), "store_hint": hint,
     }
     return _environment().get_template(_TEMPLATE).render(**context)
-
-
-def build_report(run_dir: str | Path) -> Path:
-    """(Re)write ``report.html`` of a published run from its own files, with the current page.
-
-    Reads run.json and manifest.parquet; the segment values and the features of the rows to
-    review come from the input table when it still holds the run's rows in the same order, else
-    from kept.parquet (segments of the kept rows) or not at all. The page is written aside and
-    renamed into place.
-
-    Returns
-    -------
-    Path
-        The report's path.
-    """
-    import pyarrow.parquet as pq
-
-    from .audit import published_runs
-
-    run_dir = Path(run_dir)
-    run = json.loads((run_dir / "run.json").read_text())
-    manifest = pq.read_table(run_dir / "manifest.parquet")
-    names = run["config"]["input"].get("segments") or []
-    source = _input_rows(run, manifest)
-    if source is not None:
-        table = source.to_table(columns=names)
-        segments = {n: table.column(n).to_numpy(zero_copy_only=False) for n in names}
-        rows = source.take
-    else:
-        kept = pq.read_table(run_dir / "kept.parquet", columns=names) if names else None
-        segments = {n: kept.column(n).to_numpy(zero_copy_only=False) for n in names} if kept is not None else None
-        rows = None
-    store = run_dir.parent.parent
-    history = published_runs(store)
-    page = render_html(run, manifest, segments, rows=rows, history=history, store=store)
-    tmp = run_dir / ".report.html.tmp"
-    tmp.write_text(page)
-    tmp.replace(run_dir / "report.html")
-    return run_dir / "report.html"
-
-
-def _input_rows(run, manifest):
-    """The run's input table, when it still holds the run's rows in the same order (checked by the
-    id column, so only for tables with ``input.id``); else None."""
-    from .table import _dataset
-
-    id_col = run["config"]["input"].get("id")
-    if not id_col:
-        return None
-    try:
-        dataset = _dataset(Path(run["input"]["path"]))
-        ids = dataset.to_table(columns=[id_col]).column(id_col).cast(pa.string())
-    except (LeansetError, pa.ArrowException, OSError, KeyError):  # gone, moved or unreadable
-        return None
-    return dataset if ids.equals(manifest.column("row_id")) else None
