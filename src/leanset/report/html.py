@@ -22,7 +22,7 @@ from typing import Any, Callable
 import numpy as np
 import pyarrow as pa
 
-from ..config import SCORE_NAMES
+from ..config import REGRESSION_METRICS, SCORE_NAMES
 from ..difficulty import DIFFICULTY_SIGN
 from ..errors import LeansetError
 from ..reasons import REASONS
@@ -52,6 +52,8 @@ STYLE = {
 }
 #: Rows shown per list of rows to review; the CLI lists them all.
 REVIEW_ROWS = 15
+#: Input columns shown beside each row to review (the first ones of the table).
+REVIEW_FEATURES = 8
 #: Classes drawn in the per-class score chart; the table lists every class.
 SCORE_CLASSES = 12
 #: Strata edges drawn one by one up to this many strata; beyond, only the stratified range.
@@ -186,9 +188,10 @@ def _metrics_chart(run, draw) -> dict | None:
     """Holdout metric and calibration of full, kept and random, each with its interval; axis from 0."""
     v = run["verdict"]
     cal = v.get("calibration") or {}
-    panels = [(f"holdout {v['metric']} (higher is better)", {k: v[k] for k in ("full", "kept", "random")},
-               {"kept": [v["full"] - v["ci"][1], v["full"] - v["ci"][0]], "random": v.get("random_ci")},
-               v["full"] - v["tolerance"] if v["metric"] not in ("rmse", "mae") else None)]
+    lower = v["metric"] in _LOWER_IS_BETTER
+    panels = [(f"holdout {v['metric']} ({'lower' if lower else 'higher'} is better)", {k: v[k] for k in ("full", "kept", "random")},
+               {"kept": None if lower else [v["full"] - v["ci"][1], v["full"] - v["ci"][0]], "random": v.get("random_ci")},
+               None if lower else v["full"] - v["tolerance"])]
     if all(k in cal for k in ("full", "kept", "random")):
         panels.append((f"{_calibration_name(run)} (lower is better)", {k: cal[k] for k in ("full", "kept", "random")},
                        {k: cal.get(f"{k}_ci") for k in ("full", "kept", "random")}, None))
@@ -216,6 +219,14 @@ def _metrics_chart(run, draw) -> dict | None:
         ax.set_title(title, fontsize="small", loc="left")
         _style(ax)
     return draw(fig, f"holdout {v['metric']} and calibration of the target trained on all, kept and random rows")
+
+
+#: Metrics where a smaller value is better: no "all rows minus tolerance" line is drawn for them.
+_LOWER_IS_BETTER = ("log_loss", "rmse", "mae")
+
+
+def _regression(run) -> bool:
+    return run["verdict"]["metric"] in REGRESSION_METRICS or run["config"]["input"].get("task") == "regression"
 
 
 def _calibration_name(run) -> str:
@@ -329,7 +340,7 @@ def _composition(run, manifest, segments, draw) -> dict[str, Any]:
     weight = np.nan_to_num(manifest.column("weight").to_numpy(zero_copy_only=False).astype(np.float64))
     weighted = run["config"]["selection"].get("weights") == "class_prior"
     groups = []
-    if run["config"]["input"].get("task", "classification") != "regression":
+    if not _regression(run):
         groups.append(("class", manifest.column("label").to_numpy(zero_copy_only=False).astype(str), True))
     for name, values in (segments or {}).items():
         if len(values) == len(decision):  # one value per input row
@@ -364,6 +375,9 @@ def _score_view(run, manifest) -> dict[str, Any]:
     decision = manifest.column("decision").to_numpy(zero_copy_only=False)
     reason = manifest.column("reason").to_numpy(zero_copy_only=False)
     label = manifest.column("label").to_numpy(zero_copy_only=False).astype(str)
+    pooled = _regression(run)
+    if pooled:  # strata and hard cuts are per label bin, which the manifest does not record: one panel, no edges
+        label = np.full(len(label), "all rows")
     stratum = manifest.column("stratum").to_numpy(zero_copy_only=False)
     stratum = np.where(np.isnan(stratum.astype(np.float64)), -1, stratum).astype(np.int64)
     train = (decision != "holdout") & np.isfinite(values)
@@ -376,11 +390,11 @@ def _score_view(run, manifest) -> dict[str, Any]:
         d = values[m]
         rest = m & (stratum >= 0)
         edges, span = [], None
-        if sel.get("strategy") == "stratified" and rest.any():
+        if sel.get("strategy") == "stratified" and rest.any() and not pooled:
             lo, hi = np.min(sign * values[rest]), np.max(sign * values[rest])
             bounds = sorted(float(sign * e) for e in np.linspace(lo, hi, int(sel.get("strata", 1)) + 1))
             edges, span = bounds[1:-1], (bounds[0], bounds[-1], (bounds[-1] - bounds[0]) / max(len(bounds) - 1, 1))
-        cut_rows = m & (reason == "drop:hard_cut")
+        cut_rows = m & (reason == "drop:hard_cut") & (not pooled)
         hard_cut = float(sign * np.min(sign * values[cut_rows])) if cut_rows.any() else None
         by_reason = {r: int(k) for r, k in zip(*np.unique(reason[m], return_counts=True))}
         classes.append({"name": str(c), "rows": int(m.sum()), "kept": int((m & (decision == "keep")).sum()),
@@ -466,7 +480,9 @@ def _review(run, manifest, rows: Callable | None, store_hint: str) -> dict[str, 
             except (LeansetError, pa.ArrowException, OSError) as exc:  # the input table moved: manifest columns only
                 table, note = None, f"features not shown: the input table could not be read ({str(exc).splitlines()[0]})"
             if table is not None:
-                features = [n for n in table.column_names if n not in cols][:12]
+                inp = run["config"]["input"]
+                skip = {*cols, inp.get("id"), inp.get("label"), "row_id"}
+                features = [n for n in table.column_names if n not in skip][:REVIEW_FEATURES]
                 for rec, frow in zip(picked, table.select(features).to_pylist()):
                     rec["features"] = frow
         out.append({"key": key, "title": title, "order": order, "total": int(len(idx)), "rows": picked,

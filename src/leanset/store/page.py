@@ -33,13 +33,13 @@ def review_list(store: str | Path, run: str, which: str) -> tuple[str, list[dict
     return run_id, review_rows(pq.read_table(opened.path / "runs" / run_id / "manifest.parquet"), which).to_pylist()
 
 
-def build_report(run_dir: str | Path) -> Path:
+def build_report(run_dir: str | Path, out: str | Path | None = None) -> Path:
     """(Re)write ``report.html`` of a published run from its own files, with the current page.
 
     Reads run.json and manifest.parquet; the segment values and the features of the rows to
     review come from the input table when it still holds the run's rows in the same order, else
     from kept.parquet (segments of the kept rows) or not at all. The page is written aside and
-    renamed into place.
+    renamed into place: ``out``, or the run's own ``report.html`` when None.
 
     Returns
     -------
@@ -62,10 +62,11 @@ def build_report(run_dir: str | Path) -> Path:
     store = run_dir.parent.parent
     history = published_runs(store)
     page = render_html(run, manifest, segments, rows=rows, history=history, store=store)
-    tmp = run_dir / ".report.html.tmp"
+    out = Path(out) if out is not None else run_dir / "report.html"
+    tmp = out.with_name(f".{out.name}.tmp")
     tmp.write_text(page)
-    tmp.replace(run_dir / "report.html")
-    return run_dir / "report.html"
+    tmp.replace(out)
+    return out
 
 
 def _input_rows(run, manifest):
