@@ -33,7 +33,7 @@ class _Page(HTMLParser):
         if tag == "svg":
             self.sections.setdefault(self.current, []).append("svg")
         for key in ("src", "href"):
-            if a.get(key) and not a[key].startswith("data:"):
+            if a.get(key) and not a[key].startswith(("data:", "#")):  # in-page anchors load nothing
                 self.external.append(a[key])
         if tag in ("script", "link", "iframe"):
             self.external.append(tag)
