@@ -379,6 +379,31 @@ def restore_command(run: str = typer.Argument(..., help="Run id or unique prefix
     _emit(r, json_, table)
 
 
+@app.command("report", rich_help_panel=AUDIT)
+def report_command(run: str = typer.Argument(..., help="Run id, unique prefix, or latest."),
+                   list_: Optional[str] = typer.Option(None, "--list", help="Instead, print every row to review: suspect or conflict."),
+                   store: Path = _STORE, json_: bool = _JSON) -> None:
+    """(Re)build a run's report.html from its files, so older runs get the current page."""
+    from .store import page
+
+    try:
+        if list_ is None:
+            Console().print(f"wrote {page.rebuild(store, run)}", soft_wrap=True, highlight=False)
+            return
+        run_id, rows = page.review_list(store, run, list_)
+    except LeansetError as exc:
+        _fail(exc)
+    from rich.table import Table
+
+    table = Table(title=f"{len(rows):,} {list_} rows of run {run_id}", title_justify="left", box=box.SIMPLE_HEAD)
+    cols = ["row_id", "label", "decision", "reason", "aum", "el2n", "confidence"]
+    for col in cols:
+        table.add_column(col)
+    for r in rows:
+        table.add_row(*(_fmt(r.get(c)) for c in cols))
+    _emit(rows, json_, table)
+
+
 @app.command("open-data", rich_help_panel=TOOLS)
 def open_data(
     name: str = typer.Argument(..., help="digits, breast_cancer, wine, iris or diabetes."),

@@ -29,21 +29,9 @@ import pandas as pd
 
 from ..config import Config, SelectionConfig
 from ..difficulty import class_percentile
+from ..reasons import REASONS  # noqa: F401  (the codes this stage writes; defined below the stages for the reports)
 
 logger = logging.getLogger(__name__)
-
-REASONS = {
-    "keep:stratum": "kept to fill its class's budget evenly across difficulty strata (stratified)",
-    "keep:hard": "kept as one of the hardest rows of its class (hardest)",
-    "keep:easy": "kept as one of the easiest rows of its class (easiest)",
-    "keep:random": "kept by a uniform random draw within its class (random)",
-    "keep:floor": "kept only because its class would otherwise fall below selection.class_floor",
-    "drop:over_budget": "dropped: its class's budget was filled by higher-priority rows",
-    "drop:duplicate": "dropped: an exact copy (features and label) of an earlier row, which stands for it with dup_count",
-    "drop:hard_cut": "dropped: among the hardest selection.hard_cut of its class, set aside as likely label noise (stratified)",
-    "drop:suspect_label": "dropped: its AUM is below the threshold-sample cut-off, a suspected label error (selection.drop_suspect_labels)",
-    "holdout": "in the holdout: never pruned, used only to verify",
-}
 _KEEP_REASON = {"stratified": "keep:stratum", "hardest": "keep:hard", "easiest": "keep:easy", "random": "keep:random"}
 
 
@@ -336,11 +324,6 @@ def select_frame(frame, scores, config: Config, selection: SelectionConfig | Non
 
 
 # --- Stable decisions over a growing table -------------------------------------------------
-
-REASONS.update({
-    "keep:stable": "kept as in the parent run: its score stayed within selection.hysteresis",
-    "drop:stable": "dropped as in the parent run: its score stayed within selection.hysteresis",
-})
 
 
 def stabilise(fresh: Selection, difficulty: np.ndarray, y: np.ndarray, previous: np.ndarray,

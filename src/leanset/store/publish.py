@@ -437,7 +437,8 @@ def _write_locked(frame, scores, selection, verdict, config, timings, parent, ex
         for name, data in files.items():
             (tmp / name).write_bytes(data)
         segments = {name: frame.source.column(name).to_numpy(zero_copy_only=False) for name in config.input.segments}
-        (tmp / "report.html").write_text(render_html(run, manifest, segments))
+        (tmp / "report.html").write_text(render_html(run, manifest, segments, rows=frame.source.take, history=previous,
+                                                      store=config.store))
         run["timings"] = {**timings, "write": round(time.perf_counter() - t0, 3)}
         carried = run["verdict"].get("carried")
         run["cost"] = cost_ledger(run["timings"], run["verdict"].get("train_seconds"),
