@@ -95,6 +95,7 @@ class VerifyConfig(_Section):
     tolerance: float = Field(0.01, ge=0)
     class_tolerance: float = Field(0.10, ge=0)
     segment_tolerance: float = Field(0.05, ge=0)
+    calibration_tolerance: float = Field(0.25, ge=0)
     random_repeats: int = Field(3, ge=1)
     bootstrap: int = Field(1000, ge=100)
     confidence: float = Field(0.95, gt=0.5, lt=1)

@@ -18,7 +18,7 @@ from .config import Config
 from .scores import Scores
 from .select import select_frame
 from .table import RowFrame
-from .verify import compare, fit_timed, metric_interval, metric_value
+from .verify import calibration, calibration_interval, compare, fit_timed, metric_interval, metric_value
 
 DEFAULT_GRID = (0.05, 0.1, 0.2, 0.3, 0.5, 0.7)
 STRATEGIES = ("stratified", "hardest", "easiest", "random")
@@ -74,8 +74,19 @@ class FractionEvaluator:
             "fraction": float(fraction), "strategy": strategy, "kept": int(kept),
             "metric": float(np.mean([metric_value(m, self.y_hold, p) for p in probas])),
             "ci_lo": lo, "ci_hi": hi, "delta": cmp.delta, "delta_lo": cmp.ci[0], "delta_hi": cmp.ci[1],
+            **self._calibration(probas, rng),
             "train_seconds": float(np.mean([s for _, s in fits])), "status": cmp.status,
+            "blocked_by": ",".join(cmp.blocked_by),
         }
+
+    def _calibration(self, probas: list[np.ndarray], rng: np.random.Generator) -> dict[str, float]:
+        """``calibration`` (mean over the models) and its interval; NaN on a regression table."""
+        if probas[0].ndim == 1:
+            return {"calibration": np.nan, "calibration_lo": np.nan, "calibration_hi": np.nan}
+        v = self.config.verify
+        lo, hi = calibration_interval(self.y_hold, probas, v.bootstrap, v.confidence, rng)
+        return {"calibration": float(np.mean([calibration(self.y_hold, p) for p in probas])),
+                "calibration_lo": lo, "calibration_hi": hi}
 
     def full_point(self) -> dict[str, Any]:
         """The full-data model as a frontier row (fraction 1)."""
@@ -85,7 +96,8 @@ class FractionEvaluator:
                                  cfg.verify.confidence, rng)
         return {"fraction": 1.0, "strategy": "full", "kept": len(self.y),
                 "metric": metric_value(cfg.verify.metric, self.y_hold, self.proba_full_), "ci_lo": lo, "ci_hi": hi,
-                "delta": 0.0, "delta_lo": 0.0, "delta_hi": 0.0, "train_seconds": self.full_seconds_, "status": "pass"}
+                "delta": 0.0, "delta_lo": 0.0, "delta_hi": 0.0, **self._calibration([self.proba_full_], rng),
+                "train_seconds": self.full_seconds_, "status": "pass", "blocked_by": ""}
 
 
 def sweep(evaluator: FractionEvaluator, fractions=DEFAULT_GRID, strategies=STRATEGIES) -> pd.DataFrame:
@@ -95,7 +107,9 @@ def sweep(evaluator: FractionEvaluator, fractions=DEFAULT_GRID, strategies=STRAT
     -------
     pandas.DataFrame
         Columns ``fraction, strategy, kept, metric, ci_lo, ci_hi, delta, delta_lo, delta_hi,
-        train_seconds, status``.
+        calibration, calibration_lo, calibration_hi, train_seconds, status, blocked_by``; calibration
+        is the Brier score (binary) or log loss (multiclass), NaN for regression; ``blocked_by``
+        names the guards that kept a point from passing.
     """
     rows = [evaluator.point(f, s) for f in sorted(fractions) for s in strategies]
     return pd.DataFrame([*rows, evaluator.full_point()])

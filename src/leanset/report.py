@@ -40,8 +40,12 @@ def summary(run: dict[str, Any], run_dir: str | Path) -> Table:
     table.add_row("class recall", " · ".join(f"{name} {r['full']:.2f}→{r['kept']:.2f}" for name, r in v["per_class_recall"].items()))
     if v.get("calibration"):
         cal, name = v["calibration"], "Brier score" if len(v["per_class_recall"]) == 2 else "log loss"
+        guard = ""
+        if "excess" in cal:
+            guard = (f"; kept {cal['excess']:+.1%} against full, CI [{cal['ci'][0]:+.1%}, {cal['ci'][1]:+.1%}], "
+                     f"guard {'FAILED' if cal['failed'] else 'ok'} at +{cal['tolerance']:.0%}")
         table.add_row("calibration", f"{name} (lower is better): full {cal['full']:.4f} · kept {cal['kept']:.4f} · "
-                      f"random {cal['random']:.4f}")
+                      f"random {cal['random']:.4f}{guard}")
     if v["failed_classes"]:
         table.add_row("class guard", "recall dropped too far for: " + ", ".join(v["failed_classes"]))
     if "search" in run:
