@@ -64,7 +64,7 @@ class ProxyConfig(_Section):
 class SelectionConfig(_Section):
     fraction: Annotated[float, Field(gt=0, le=1)] | Literal["auto"] = 0.3
     grid: list[Annotated[float, Field(gt=0, le=1)]] = Field(default_factory=lambda: [0.05, 0.1, 0.2, 0.3, 0.5, 0.7], min_length=1)
-    strategy: Literal["stratified", "hardest", "easiest", "random"] = "stratified"
+    strategy: Literal["stratified", "hardest", "easiest", "random", "importance"] = "stratified"
     score: Literal[SCORE_NAMES] = "aum"  # type: ignore[valid-type]
     quotas: Literal["balanced", "proportional"] = "balanced"
     class_floor: int = Field(50, ge=0)
@@ -75,6 +75,8 @@ class SelectionConfig(_Section):
     drop_suspect_labels: bool = False
     segment_floor: int = Field(20, ge=0)
     dedupe: bool = True
+    validation: float = Field(0.2, gt=0, lt=1)
+    tilt: Annotated[float, Field(gt=-1, lt=1)] | Literal["auto"] = "auto"
 
 
 class TargetConfig(_Section):

@@ -22,7 +22,7 @@ from prefect.cache_policies import NO_CACHE  # noqa: E402
 from prefect.context import FlowRunContext  # noqa: E402
 
 from .config import Config, load_config  # noqa: E402
-from .frontier import FractionEvaluator, frontier_files, search_fraction, sweep  # noqa: E402
+from .frontier import FractionEvaluator, choose_fraction, frontier_files, sweep  # noqa: E402
 from .scores import Scores, agreement, score  # noqa: E402
 from .select import Selection, select_frame, stabilise  # noqa: E402
 from .store import ParentRun, read_parent, store_lock, write_run  # noqa: E402
@@ -82,8 +82,8 @@ def full_fit_task(frame: RowFrame, scores: Scores, config: Config) -> FractionEv
 
 
 @task(name="search-fraction", cache_policy=NO_CACHE)
-def search_task(evaluator: FractionEvaluator, config: Config) -> tuple[float, list[dict]]:
-    return search_fraction(evaluator, config.selection.strategy, config.selection.grid)
+def search_task(frame: RowFrame, scores: Scores, config: Config) -> tuple[float, list[dict]]:
+    return choose_fraction(frame, scores, config)
 
 
 @task(name="frontier", cache_policy=NO_CACHE)
@@ -129,11 +129,11 @@ def _pipeline(config_path: str, overrides: dict[str, Any] | None, wait: float, f
         scores = timed("score", score_task, frame, config)
         scores.info["agreement"] = timed("agreement", agreement_task, frame, scores, config)
         auto = config.selection.fraction == "auto"
-        evaluator = timed("fit-full", full_fit_task, frame, scores, config) if auto or frontier else None
+        evaluator = timed("fit-full", full_fit_task, frame, scores, config) if frontier else None
         extra: dict[str, Any] = {}
         files: dict[str, bytes] = {}
-        if auto:
-            fraction, tried = timed("search-fraction", search_task, evaluator, config)
+        if auto:  # chosen on a validation slice of the training rows; the holdout judges it once, in verify
+            fraction, tried = timed("search-fraction", search_task, frame, scores, config)
             extra["search"] = {"strategy": config.selection.strategy, "fraction": fraction, "tried": tried}
             config = config.model_copy(update={"selection": config.selection.model_copy(update={"fraction": fraction})})
         selection = timed("select", select_task, frame, scores, config)

@@ -49,7 +49,8 @@ def summary(run: dict[str, Any], run_dir: str | Path) -> Table:
     if v["failed_classes"]:
         table.add_row("class guard", "recall dropped too far for: " + ", ".join(v["failed_classes"]))
     if "search" in run:
-        tried = ", ".join(f"{t['fraction']:g} {t['status']}" for t in run["search"]["tried"])
+        tried = ", ".join(f"{t['fraction']:g} {t['status']}" + (f" ({t['blocked_by']})" if t.get("blocked_by") else "")
+                          for t in run["search"]["tried"])
         found = run["search"]["fraction"]
         head = f"smallest passing {found:g}" if found < 1 else "no grid fraction passed; all rows kept"
         table.add_row("fraction search", f"{head} (tried {tried})")
