@@ -398,8 +398,9 @@ def select_frame(frame, scores, config: Config, selection: SelectionConfig | Non
     train, selection = frame.train, selection or config.selection
     rows = np.arange(len(train)) if rows is None else rows
     train = train[rows]
+    suspect = scores.suspects()
     return select_rows(scores.difficulty(selection.score)[rows], frame.groups[train], selection, config.seed,
-                       suspect=scores.suspects()[rows], segments=None if frame.segments is None else frame.segments[train],
+                       suspect=None if suspect is None else suspect[rows], segments=None if frame.segments is None else frame.segments[train],
                        X=frame.feature_hash[train])
 
 

@@ -205,7 +205,7 @@ def table_lines(points: list[dict], rows: int) -> list[str]:
              "Brier (binary) or log loss, lower is better",
              "  frac   kept  rule_metric  random_metric [interval]      rule_cal  random_cal [interval]       flag"]
     for p in points:
-        flag = "BELOW" if p["below"] else "above" if p["above"] else "-"
+        flag = " ".join(word for word, on in (("BELOW", p["below"]), ("above", p["above"])) if on) or "-"
         extra = f"  hardest {p['hardest']:.4f}" if "hardest" in p else ""
         lines.append(f"  {p['fraction']:<5g} {p['kept']:>6,}  {p['rule_metric']:.4f}       {p['random_metric']:.4f} "
                      f"[{p['random_ci_lo']:.4f}, {p['random_ci_hi']:.4f}]  {p['rule_calibration']:.4f}    "
