@@ -25,8 +25,9 @@ from leanset.select import REASONS, class_quotas, select
 from leanset.table import load_table
 from leanset.verify import fit_target, metric_value
 
-STRATEGIES = ("stratified", "hardest", "easiest", "random")
-KEEP_REASON = {"stratified": "keep:stratum", "hardest": "keep:hard", "easiest": "keep:easy", "random": "keep:random"}
+STRATEGIES = ("stratified", "hardest", "easiest", "random", "importance")
+KEEP_REASON = {"stratified": "keep:stratum", "hardest": "keep:hard", "easiest": "keep:easy", "random": "keep:random",
+               "importance": "keep:sampled"}
 
 
 def _imbalanced(seed: int = 0, sizes=(600, 250, 80, 20)):

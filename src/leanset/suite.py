@@ -185,7 +185,8 @@ def run_table(table: SuiteTable, config: Config, grid=DEFAULT_GRID, hardest_from
                **{f"random_{k}": rnd[k] for k in ("metric", "ci_lo", "ci_hi", "calibration", "calibration_lo",
                                                   "calibration_hi", "status")},
                "below": bool(worse_metric or worse_cal), "above": _better(m, rule["metric"], rnd["metric"]),
-               "full": ev.full_point()["metric"] if not out else out[0]["full"]}
+               **({k: out[0][k] for k in ("full", "full_calibration")} if out else
+                  {"full": (full := ev.full_point())["metric"], "full_calibration": full["calibration"]})}
         if hardest_from is not None and f >= hardest_from:
             row["hardest"] = ev.point(f, "hardest")["metric"]
         out.append(row)
@@ -201,8 +202,8 @@ def smallest_passing(points: list[dict], who: str) -> float | None:
 def table_lines(points: list[dict], rows: int) -> list[str]:
     """The printed block of one table."""
     p0 = points[0]
-    lines = [f"table {p0['table']}: {rows:,} rows, {p0['metric_name']} (full {p0['full']:.4f}); calibration = "
-             "Brier (binary) or log loss, lower is better",
+    lines = [f"table {p0['table']}: {rows:,} rows, {p0['metric_name']} (full {p0['full']:.4f}), calibration "
+             f"(full {p0['full_calibration']:.4f}) = Brier (binary) or log loss, lower is better",
              "  frac   kept  rule_metric  random_metric [interval]      rule_cal  random_cal [interval]       flag"]
     for p in points:
         flag = " ".join(word for word, on in (("BELOW", p["below"]), ("above", p["above"])) if on) or "-"
