@@ -95,7 +95,7 @@ def main() -> None:
     ap.add_argument("--store", type=Path, help="reuse or create the store here (default: a temporary folder)")
     ap.add_argument("--repeat", type=int, default=3, help="take the best of this many timings")
     args = ap.parse_args()
-    from leanset import audit
+    from leanset.store import audit
 
     with tempfile.TemporaryDirectory() as tmp:
         store = args.store or Path(tmp) / "store"

@@ -1,7 +1,7 @@
 """Single machine vs Dask: score one config on both engines and compare the kept sets and scores.
 
-Runs the score stage locally (``leanset.scores.score``) and on local Dask clusters
-(``leanset.cluster.score``) of ``--workers`` workers and of one worker, selects with the
+Runs the score stage locally (``leanset.scores.dynamics.score``) and on local Dask clusters
+(``leanset.scores.cluster.score``) of ``--workers`` workers and of one worker, selects with the
 config's selection, and prints the Jaccard index of the kept sets, the Spearman correlation
 (``scipy.stats.spearmanr``) of every score, the agreement of the suspected label errors, and
 whether a second Dask run repeats the first exactly. The one-worker cluster trains without
@@ -23,8 +23,8 @@ import numpy as np
 from scipy import stats
 
 from leanset.config import SCORE_NAMES, load_config
-from leanset.select import select_frame
-from leanset.table import load_table
+from leanset.select.rules import select_frame
+from leanset.load.table import load_table
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -39,7 +39,7 @@ def main() -> None:
     ap.add_argument("--workers", type=int, default=2)
     ap.add_argument("--batch-rows", type=int, default=None, help="rows per partition (execution.batch_rows)")
     args = ap.parse_args()
-    from leanset import cluster, scores
+    from leanset.scores import cluster, dynamics as scores
 
     config = load_config(args.config, {"execution.engine": "dask", "execution.batch_rows": args.batch_rows})
     frame = load_table(config)

@@ -19,9 +19,9 @@ import numpy as np
 from sklearn.metrics import precision_score, recall_score
 
 from leanset.config import Config
-from leanset.datasets import flipped_table
-from leanset.scores import score
-from leanset.table import load_table
+from leanset.tools.datasets import flipped_table
+from leanset.scores.dynamics import score
+from leanset.load.table import load_table
 
 DATASETS = ("digits", "wine", "breast_cancer")
 

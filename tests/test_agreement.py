@@ -15,10 +15,10 @@ from scipy.stats import spearmanr
 from sklearn import metrics
 from sklearn.datasets import load_breast_cancer, load_diabetes
 
-import leanset.scores as scores_mod
+import leanset.scores.dynamics as scores_mod
 from leanset.config import Config
-from leanset.scores import agreement, score
-from leanset.table import load_table
+from leanset.scores.dynamics import agreement, score
+from leanset.load.table import load_table
 
 ONE_THREAD = {"num_threads": 1}
 

@@ -11,7 +11,7 @@ import pyarrow.parquet as pq
 import pytest
 from typer.testing import CliRunner
 
-import leanset.bench as bench
+import leanset.tools.bench as bench
 from leanset.cli import app
 from leanset.errors import ConfigError
 
@@ -60,7 +60,7 @@ def test_make_table_same_seed_same_rows_whatever_the_files(tmp_path, monkeypatch
 def test_make_table_default_files_and_loadable(tmp_path):
     """Without --files the table is cut in at least 2 files, and load_table reads the folder as the table."""
     from leanset.config import Config
-    from leanset.table import load_table
+    from leanset.load.table import load_table
 
     _make(tmp_path / "t", "--rows", "900", "--features", "3", "--classes", "2")
     assert len(list((tmp_path / "t").glob("part-*.parquet"))) == 2

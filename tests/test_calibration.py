@@ -15,7 +15,7 @@ from sklearn.linear_model import LogisticRegression
 from sklearn.model_selection import cross_val_predict, train_test_split
 
 from leanset.config import TargetConfig, VerifyConfig
-from leanset.verify import _resamples, calibration, calibration_excess, calibration_interval, row_calibration, verify
+from leanset.verify.stats import _resamples, calibration, calibration_excess, calibration_interval, row_calibration, verify
 
 LGBM = TargetConfig(params={"num_boost_round": 50, "num_threads": 1})
 

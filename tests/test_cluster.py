@@ -1,4 +1,4 @@
-"""The score stage on a Dask cluster (``leanset.cluster``) against the single-machine one.
+"""The score stage on a Dask cluster (``leanset.scores.cluster``) against the single-machine one.
 
 Tables: scikit-learn's bundled ``load_breast_cancer`` (binary), ``load_wine`` (three classes) and
 ``load_diabetes`` (regression), written to parquet. Outside references: Jaccard index
@@ -19,14 +19,14 @@ from scipy import stats
 from sklearn import metrics
 from sklearn.datasets import load_breast_cancer, load_diabetes, load_wine
 
-from leanset import cluster, scores
+from leanset.scores import cluster, dynamics as scores
 from leanset.config import ExecutionConfig, load_config
 from leanset.errors import ConfigError, InputError
-from leanset.proxy import n_checkpoints
-from leanset.scores import residual_band
-from leanset.select import select_frame
-from leanset.store import check_conservation
-from leanset.table import load_table
+from leanset.models.proxy import n_checkpoints
+from leanset.scores.dynamics import residual_band
+from leanset.select.rules import select_frame
+from leanset.store.publish import check_conservation
+from leanset.load.table import load_table
 from store_helpers import assert_conserved, manifest, run_json, run_ok
 from store_helpers import config as write_config
 

@@ -12,10 +12,10 @@ from typer.testing import CliRunner
 
 from leanset.cli import app
 from leanset.config import load_config
-from leanset.frontier import FractionEvaluator, frontier_files, search_fraction, sweep
-from leanset.scores import score
-from leanset.table import load_table
-from leanset.verify import metric_value
+from leanset.verify.frontier import FractionEvaluator, frontier_files, search_fraction, sweep
+from leanset.scores.dynamics import score
+from leanset.load.table import load_table
+from leanset.verify.stats import metric_value
 
 COLUMNS = ["fraction", "strategy", "metric", "ci_lo", "ci_hi", "train_seconds", "status"]
 
@@ -115,8 +115,8 @@ def test_auto_never_reads_the_holdout(cancer, monkeypatch):
     # feature read is recorded: the choice must not change and no holdout row may be read.
     from dataclasses import replace
 
-    from leanset.frontier import choose_fraction
-    from leanset.table import RowFrame
+    from leanset.load.table import RowFrame
+    from leanset.verify.frontier import choose_fraction
 
     config = load_config(cancer)
     frame = load_table(config)

@@ -17,7 +17,7 @@ import pytest
 from scipy import stats
 
 from leanset.config import SelectionConfig
-from leanset.select import auto_tilt, inclusion_probabilities, select, systematic_sample
+from leanset.select.rules import auto_tilt, inclusion_probabilities, select, systematic_sample
 
 
 def test_inclusion_probabilities_hand_worked():

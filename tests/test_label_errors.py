@@ -15,12 +15,12 @@ import numpy as np
 import pytest
 from sklearn.metrics import precision_score, recall_score, roc_auc_score
 
-import leanset.scores as scores_mod
+import leanset.scores.dynamics as scores_mod
 from leanset.config import Config, SelectionConfig
-from leanset.datasets import flipped_table
-from leanset.scores import score
-from leanset.select import select_rows
-from leanset.table import load_table
+from leanset.tools.datasets import flipped_table
+from leanset.scores.dynamics import score
+from leanset.select.rules import select_rows
+from leanset.load.table import load_table
 
 DATASETS = ("digits", "wine", "breast_cancer")
 # One LightGBM thread: a runtime setting only (OpenMP threads spin on a shared 2-core runner).
@@ -144,7 +144,7 @@ def test_run_writes_suspect_label_and_drops_suspects(tmp_path, prefect_api):
     from rich.console import Console
 
     from leanset.flows import prune_flow
-    from leanset.report import summary
+    from leanset.report.summary import summary
 
     cfg, frame, flipped = _flipped_table(tmp_path, "digits")
     raw = cfg.model_dump(mode="json")

@@ -6,8 +6,8 @@ from sklearn.datasets import load_breast_cancer, load_wine
 from sklearn.metrics import brier_score_loss, log_loss
 
 from leanset.config import SelectionConfig
-from leanset.select import find_duplicates, select
-from leanset.verify import calibration
+from leanset.select.rules import find_duplicates, select
+from leanset.verify.stats import calibration
 
 
 def _wine():

@@ -21,13 +21,13 @@ import yaml
 from sklearn import metrics
 from sklearn.datasets import load_diabetes
 
-import leanset.scores as scores_mod
+import leanset.scores.dynamics as scores_mod
 from leanset.flows import prune_flow
 from leanset.config import Config
 from leanset.errors import ConfigError, InputError
-from leanset.scores import residual_band, score
-from leanset.table import load_table
-from leanset.verify import ORIENTATION, metric_value
+from leanset.scores.dynamics import residual_band, score
+from leanset.load.table import load_table
+from leanset.verify.stats import ORIENTATION, metric_value
 
 ONE_THREAD = {"num_threads": 1}
 PROXIES = {

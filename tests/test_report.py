@@ -7,7 +7,7 @@ from html.parser import HTMLParser
 
 import pytest
 
-from leanset.report_html import CAUTIONS, SECTIONS
+from leanset.report.html import CAUTIONS, SECTIONS
 from store_helpers import config, part, published, run_ok
 
 PNG = b"\x89PNG\r\n\x1a\n"  # the PNG signature (PNG specification, section 5.2)
@@ -117,7 +117,7 @@ def test_run_summary_points_at_the_report(runs):
 def test_summary_reports_calibration_beside_the_metric(runs):
     from rich.console import Console
 
-    from leanset.report import read_run, summary
+    from leanset.report.summary import read_run, summary
 
     dirs, _ = runs
     run = read_run(dirs[0])

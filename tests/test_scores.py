@@ -19,11 +19,11 @@ import pytest
 from sklearn.datasets import load_breast_cancer, load_digits, load_wine
 from sklearn.metrics import log_loss, roc_auc_score
 
-import leanset.scores as scores_mod
+import leanset.scores.dynamics as scores_mod
 from leanset.config import Config, ProxyConfig, SCORE_NAMES, load_config
-from leanset.proxy import fit_gbdt, fit_linear, n_checkpoints, softmax
-from leanset.scores import Dynamics, score
-from leanset.table import load_table
+from leanset.models.proxy import fit_gbdt, fit_linear, n_checkpoints, softmax
+from leanset.scores.dynamics import Dynamics, score
+from leanset.load.table import load_table
 
 STATS = ("forgetting", "aum", "el2n", "confidence", "variability", "correctness", "aleatoric")
 

@@ -20,10 +20,11 @@ import pytest
 from sklearn.datasets import load_digits, load_wine
 
 from leanset.config import SelectionConfig, TargetConfig, load_config
-from leanset.scores import score
-from leanset.select import REASONS, class_quotas, select
-from leanset.table import load_table
-from leanset.verify import fit_target, metric_value
+from leanset.scores.dynamics import score
+from leanset.select.rules import REASONS, class_quotas, select
+from leanset.load.table import load_table
+from leanset.models.target import fit_target
+from leanset.verify.stats import metric_value
 
 STRATEGIES = ("stratified", "hardest", "easiest", "random", "importance")
 KEEP_REASON = {"stratified": "keep:stratum", "hardest": "keep:hard", "easiest": "keep:easy", "random": "keep:random",
@@ -390,7 +391,7 @@ def test_select_frame_ranks_by_the_given_selections_score():
     from types import SimpleNamespace
 
     from leanset.config import Config
-    from leanset.select import select_frame
+    from leanset.select.rules import select_frame
 
     n = 200
     frame = SimpleNamespace(train=np.arange(n), groups=np.zeros(n, np.int32), segments=None,

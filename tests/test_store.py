@@ -15,8 +15,9 @@ import pandas as pd
 import pytest
 
 from leanset.config import SelectionConfig
-from leanset.select import class_percentile, select, stabilise
-from leanset.store import store_lock
+from leanset.difficulty import class_percentile
+from leanset.select.rules import select, stabilise
+from leanset.store.publish import store_lock
 from store_helpers import assert_conserved, cli, config, manifest, part, published, run_json, run_ok, subprocess_run
 
 
@@ -310,7 +311,7 @@ def test_batch_and_memory_settings_leave_the_lineage_but_the_engine_does_not():
     # batch size and streaming change no decision (tests/test_stream.py), so a run that only changes
     # them keeps its history; the dask engine trains other proxies, so it starts its own lineage
     from leanset.config import Config
-    from leanset.store import lineage
+    from leanset.store.publish import lineage
 
     base = {"input": {"path": "t.parquet", "label": "y"}}
     one = Config.model_validate(base)

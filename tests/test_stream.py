@@ -18,10 +18,10 @@ import pytest
 from sklearn.datasets import load_digits
 
 from leanset.config import Config
-from leanset.scores import score
-from leanset.select import select_frame
-from leanset.table import RowView, load_table
-from leanset.verify import verify
+from leanset.scores.dynamics import score
+from leanset.select.rules import select_frame
+from leanset.load.table import RowView, load_table
+from leanset.verify.stats import verify
 
 
 def _digits_folder(tmp_path: Path) -> Path:
@@ -102,10 +102,10 @@ import json, sys
 from pathlib import Path
 import numpy as np
 from leanset.config import Config
-from leanset.scores import score
-from leanset.select import select_frame
-from leanset.table import load_table
-from leanset.verify import verify
+from leanset.scores.dynamics import score
+from leanset.select.rules import select_frame
+from leanset.load.table import load_table
+from leanset.verify.stats import verify
 cfg = Config.model_validate(json.loads(sys.argv[1]))
 frame = load_table(cfg)
 scores = score(frame, cfg)

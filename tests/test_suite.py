@@ -2,7 +2,7 @@
 on flipped digits.
 
 Sources: scikit-learn's bundled wine and digits datasets (digits with 10 % of labels flipped by
-``leanset.datasets.flipped_table``, seeded). Invented tables appear only as suite inputs.
+``leanset.tools.datasets.flipped_table``, seeded). Invented tables appear only as suite inputs.
 """
 
 from __future__ import annotations
@@ -13,10 +13,10 @@ import numpy as np
 from typer.testing import CliRunner
 
 from leanset.cli import app
-from leanset.frontier import FractionEvaluator
-from leanset.scores import score
-from leanset.suite import TABLES, run_suite, suite_config
-from leanset.table import load_table
+from leanset.verify.frontier import FractionEvaluator
+from leanset.scores.dynamics import score
+from leanset.tools.suite import TABLES, run_suite, suite_config
+from leanset.load.table import load_table
 
 NUM = r"(-?[\d.]+|nan)"
 POINT = re.compile(rf"^  (\S+)\s+([\d,]+)\s+{NUM}\s+{NUM} \[{NUM}, {NUM}\]\s+{NUM}\s+{NUM} \[{NUM}, {NUM}\]\s+(.*)$")

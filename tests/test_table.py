@@ -14,7 +14,7 @@ from sklearn.datasets import load_iris, load_wine
 
 from leanset.config import Config
 from leanset.errors import InputError
-from leanset.table import check_input, load_table
+from leanset.load.table import check_input, load_table
 
 STAGES = [check_input, load_table]
 

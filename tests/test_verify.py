@@ -23,14 +23,14 @@ from sklearn.model_selection import train_test_split
 
 from leanset.config import SelectionConfig, TargetConfig, VerifyConfig
 from leanset.errors import ConfigError
-from leanset.select import select
-from leanset.verify import (
-    FittedTarget, fit_target, mcnemar_exact, metric_value, paired_bootstrap, recall_drop, resampled_metric, verify,
+from leanset.select.rules import select
+from leanset.models.target import FittedTarget, fit_target
+from leanset.verify.stats import (
+    mcnemar_exact, metric_value, paired_bootstrap, recall_drop, resampled_metric, verify,
 )
 
-# The module itself, for monkeypatching: the package re-exports the function ``verify`` under the
-# same name, so ``import leanset.verify as m`` would bind the function, not the module.
-verify_mod = importlib.import_module("leanset.verify")
+# The module whose ``fit_target`` every fit of ``verify`` goes through, for monkeypatching.
+target_mod = importlib.import_module("leanset.models.target")
 
 # One LightGBM thread and 50 rounds keep the fits quick when other processes share the CPU
 # (OpenMP threads spin under contention); neither weakens the checks below.
@@ -270,7 +270,7 @@ def _scripted_verify(monkeypatch, kept_wrong, metric="accuracy", tolerance=0.02,
     keep = np.zeros(n_train, bool)
     keep[::4] = True
     fake = _Scripted(keep, probas)
-    monkeypatch.setattr(verify_mod, "fit_target", fake)
+    monkeypatch.setattr(target_mod, "fit_target", fake)
     X_train = np.arange(n_train, dtype=float)[:, None]
     v = verify(X_train, np.arange(n_train) % k, keep, np.ones(n_train), np.zeros((n_hold, 1)), y_hold,
                [f"c{c}" for c in range(k)], [], LGBM,
@@ -446,7 +446,7 @@ def test_weights_passed_to_kept_fit_only(monkeypatch):
         calls.append((len(y), None if weight is None else weight.copy()))
         return fit_target(X, y, weight, *args, **kwargs)
 
-    monkeypatch.setattr(verify_mod, "fit_target", spy)
+    monkeypatch.setattr(target_mod, "fit_target", spy)
     v = verify(X_tr, y_tr, sel.keep, sel.weight, X_ho, y_ho, [0, 1], [], LGBM,
                VerifyConfig(bootstrap=200, random_repeats=1), seed=0)
     n_keep = int(sel.keep.sum())

@@ -10,8 +10,9 @@ from .errors import ConfigError, InputError, LeansetError, StoreError
 # Public names are imported when first used, so that `leanset runs` / `why` / `history` start
 # without loading the model libraries (LightGBM, scikit-learn, SciPy).
 _LAZY = {
-    "Config": "config", "load_config": "config", "Scores": "scores", "score": "scores",
-    "Selection": "select", "write_run": "store", "RowFrame": "table", "load_table": "table", "Verdict": "verify",
+    "Config": "config", "load_config": "config", "Scores": "scores.dynamics", "score": "scores.dynamics",
+    "Selection": "select.rules", "write_run": "store.publish", "RowFrame": "load.table", "load_table": "load.table",
+    "Verdict": "verify.stats",
 }
 
 __all__ = [

@@ -67,13 +67,13 @@ def frontier(
 
 def _launch(config: Path, overrides: dict, wait: float, verbose: bool, frontier: bool) -> None:
     """Check config and input before any flow starts, run the flow, print the summary."""
-    from .table import check_input
+    from .load.table import check_input
 
     try:
         cfg = load_config(config, overrides)
         check_input(cfg)
         if cfg.execution.engine == "dask":
-            from .cluster import check_config
+            from .scores.cluster import check_config
 
             check_config(cfg)
     except LeansetError as exc:
@@ -83,7 +83,7 @@ def _launch(config: Path, overrides: dict, wait: float, verbose: bool, frontier:
         os.environ.setdefault("DASK_LOGGING__DISTRIBUTED", "warning")  # read by the scheduler and worker processes too
         logging.getLogger("distributed").setLevel(logging.WARNING)
     from .flows import frontier_flow, prune_flow
-    from .report import frontier_table, read_run, summary
+    from .report.summary import frontier_table, read_run, summary
 
     try:
         with _progress(enabled=not verbose):
@@ -164,7 +164,7 @@ _JSON = typer.Option(False, "--json", help="Print JSON for machines instead of a
 
 
 def _audit(fn, *args, **kwargs):
-    from . import audit
+    from .store import audit
 
     try:
         return getattr(audit, fn)(*args, **kwargs)
@@ -174,7 +174,7 @@ def _audit(fn, *args, **kwargs):
 
 def _emit(data, as_json: bool, table) -> None:
     if as_json:
-        from .audit import as_json as dump
+        from .store.audit import as_json as dump
 
         typer.echo(dump(data))
     else:
@@ -304,7 +304,7 @@ def open_data(
     out: Path = typer.Option(..., help="Parquet file to write."),
 ) -> None:
     """Write one of scikit-learn's bundled datasets as a parquet table (label column: label)."""
-    from .datasets import export_bundled
+    from .tools.datasets import export_bundled
 
     try:
         path = export_bundled(name, out)
@@ -331,7 +331,7 @@ def bench_score_command(
     """Time the score stage against K plain fits of the same gbdt proxy; the last line is score_overhead_ratio=…"""
     from pydantic import ValidationError
 
-    from .bench import bench_score
+    from .tools.bench import bench_score
     from .config import Config
     from .errors import ConfigError
 
@@ -354,7 +354,7 @@ def bench_make_table_command(
     seed: int = typer.Option(0, help="Seed of the generator."),
 ) -> None:
     """Write an invented classification table as parquet files, chunk by chunk; same seed, same rows."""
-    from .bench import write_table
+    from .tools.bench import write_table
 
     try:
         written = write_table(out, rows, features, classes, seed, files)
@@ -380,7 +380,7 @@ def bench_scale_command(
     """Time load, score and select on parquet tables of growing size, one fresh process each; the last line is time_exponent=…"""
     from pydantic import ValidationError
 
-    from .bench import bench_scale
+    from .tools.bench import bench_scale
     from .config import Config
     from .errors import ConfigError
 
@@ -413,7 +413,7 @@ def bench_suite_command(
     import yaml
 
     from .errors import ConfigError
-    from .suite import TABLES, run_suite
+    from .tools.suite import TABLES, run_suite
 
     names = None if tables is None else [t.strip() for t in tables.split(",") if t.strip()]
     unknown = sorted(set(names or []) - {t.name for t in TABLES})

@@ -22,12 +22,12 @@ from prefect.cache_policies import NO_CACHE  # noqa: E402
 from prefect.context import FlowRunContext  # noqa: E402
 
 from .config import Config, load_config  # noqa: E402
-from .frontier import FractionEvaluator, choose_fraction, frontier_files, sweep  # noqa: E402
-from .scores import Scores, agreement, score  # noqa: E402
-from .select import Selection, select_frame, stabilise  # noqa: E402
-from .store import ParentRun, read_parent, store_lock, write_run  # noqa: E402
-from .table import RowFrame, load_table  # noqa: E402
-from .verify import Verdict, verify  # noqa: E402
+from .verify.frontier import FractionEvaluator, choose_fraction, frontier_files, sweep  # noqa: E402
+from .scores.dynamics import Scores, agreement, score  # noqa: E402
+from .select.rules import Selection, select_frame, stabilise  # noqa: E402
+from .store.publish import ParentRun, read_parent, store_lock, write_run  # noqa: E402
+from .load.table import RowFrame, load_table  # noqa: E402
+from .verify.stats import Verdict, verify  # noqa: E402
 
 
 #: Callables told the name of each stage as it starts (the CLI draws its progress display from them).
@@ -47,7 +47,7 @@ def load_task(config: Config) -> RowFrame:
 @task(name="score", cache_policy=NO_CACHE)
 def score_task(frame: RowFrame, config: Config) -> Scores:
     if config.execution.engine == "dask":
-        from .cluster import score as score_on_cluster
+        from .scores.cluster import score as score_on_cluster
         # the cluster of the DaskTaskRunner that dask_flow runs with
         return score_on_cluster(frame, config, FlowRunContext.get().task_runner.client)
     return score(frame, config)
@@ -173,7 +173,7 @@ def _on_engine(config_path: str, overrides: dict[str, Any] | None, wait: float, 
     execution = config.execution
     if execution.engine == "local":
         return _pipeline(config_path, overrides, wait, frontier)
-    from .cluster import check_config, local_cluster_kwargs
+    from .scores.cluster import check_config, local_cluster_kwargs
     from prefect_dask import DaskTaskRunner
 
     check_config(config)
@@ -188,7 +188,7 @@ def publish_task(run_dir: str) -> None:
     import pyarrow.parquet as pq
     from prefect.artifacts import create_markdown_artifact, create_table_artifact
 
-    from .report import markdown_summary, read_run, reason_counts
+    from .report.summary import markdown_summary, read_run, reason_counts
 
     run = read_run(run_dir)
     create_markdown_artifact(markdown_summary(run, run_dir), key="leanset-summary",

@@ -8,7 +8,7 @@ calibration (Brier score for binary, log loss for multiclass), and as ``above`` 
 beats random's mean.
 
 Tables: scikit-learn's bundled digits, wine and breast cancer, each also with 10 % of its labels
-flipped (:func:`leanset.datasets.flipped_table`), and diabetes (regression); invented tables that
+flipped (:func:`leanset.tools.datasets.flipped_table`), and diabetes (regression); invented tables that
 each isolate one property (redundant, noisy, imbalanced, many classes and clean, mixed numeric and
 categorical with ordered overlapping classes, regression), of ``FULL_ROWS`` rows, or
 ``QUICK_ROWS`` with ``--quick``.
@@ -25,12 +25,12 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .config import REGRESSION_METRICS, Config
+from ..config import REGRESSION_METRICS, Config
+from ..load.table import load_table
+from ..scores.dynamics import score
+from ..verify.frontier import DEFAULT_GRID, FractionEvaluator
+from ..verify.stats import ORIENTATION
 from .datasets import BUNDLED, flipped_table
-from .frontier import DEFAULT_GRID, FractionEvaluator
-from .scores import score
-from .table import load_table
-from .verify import ORIENTATION
 
 FULL_ROWS = 200_000
 QUICK_ROWS = 4_000

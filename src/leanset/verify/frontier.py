@@ -14,11 +14,12 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from .config import Config
-from .scores import Scores
-from .select import select_frame
-from .table import RowFrame
-from .verify import calibration, calibration_interval, compare, fit_timed, metric_interval, metric_value
+from ..config import Config
+from ..scores.dynamics import Scores
+from ..select.rules import select_frame
+from ..load.table import RowFrame
+from ..models.target import fit_timed
+from .stats import calibration, calibration_interval, compare, metric_interval, metric_value
 
 DEFAULT_GRID = (0.05, 0.1, 0.2, 0.3, 0.5, 0.7)
 STRATEGIES = ("stratified", "hardest", "easiest", "random")

@@ -29,13 +29,13 @@ import pyarrow as pa
 import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
-from . import errors
-from .config import Config, ExecutionConfig
-from .errors import ConfigError, LeansetError
-from .proxy import gbdt_params
-from .scores import score
-from .select import select_frame
-from .table import RowFrame, TableSource, _split, load_table
+from .. import errors
+from ..config import Config, ExecutionConfig
+from ..errors import ConfigError, LeansetError
+from ..models.proxy import gbdt_params
+from ..scores.dynamics import score
+from ..select.rules import select_frame
+from ..load.table import RowFrame, TableSource, load_table, split_rows
 
 #: Rows drawn per generator chunk. Fixed: the data depend on it, never on the number of files.
 CHUNK_ROWS = 100_000
@@ -84,7 +84,7 @@ def make_table(rows: int, features: int, classes: int, seed: int = 0, holdout: f
     for start, Xc, yc in table_chunks(rows, features, classes, seed):
         X[start:start + len(yc)], y[start:start + len(yc)] = Xc, yc
     row_id = np.arange(rows, dtype=np.int64)
-    hold, fold = _split(row_id, y, holdout, folds, seed)
+    hold, fold = split_rows(row_id, y, holdout, folds, seed)
     return RowFrame(row_id=row_id, y=y, classes=list(range(classes)), X=X,
                     feature_names=[f"x{j}" for j in range(features)], categorical=[], categories={},
                     holdout=hold, fold=fold, fingerprint="bench",
@@ -382,7 +382,7 @@ def run_size(table: Path, rows: int, features: int, config: Config, made: bool) 
     SizeBench
     """
     cfg = config.model_copy(update={"input": config.input.model_copy(update={"path": Path(table), "label": "label"})})
-    child = subprocess.run([sys.executable, "-c", "from leanset.bench import _scale_child; _scale_child()"],
+    child = subprocess.run([sys.executable, "-c", "from leanset.tools.bench import _scale_child; _scale_child()"],
                            input=cfg.model_dump_json(), capture_output=True, text=True)
     lines = child.stdout.strip().splitlines()
     result = json.loads(lines[-1]) if lines and lines[-1].startswith("{") else None

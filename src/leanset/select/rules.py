@@ -33,7 +33,8 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 import pandas as pd
 
-from .config import Config, SelectionConfig
+from ..config import Config, SelectionConfig
+from ..difficulty import class_percentile
 
 REASONS = {
     "keep:stratum": "kept to fill its class's budget evenly across difficulty strata (stratified)",
@@ -410,11 +411,6 @@ REASONS.update({
     "keep:stable": "kept as in the parent run: its score stayed within selection.hysteresis",
     "drop:stable": "dropped as in the parent run: its score stayed within selection.hysteresis",
 })
-
-
-def class_percentile(values: np.ndarray, groups: np.ndarray) -> np.ndarray:
-    """Percentile rank in (0, 1] of each value within its group (ties share their mean rank)."""
-    return pd.Series(np.asarray(values, np.float64)).groupby(np.asarray(groups)).rank(method="average", pct=True).to_numpy()
 
 
 def stabilise(fresh: Selection, difficulty: np.ndarray, y: np.ndarray, previous: np.ndarray,

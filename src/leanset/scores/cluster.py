@@ -1,6 +1,6 @@
 """Score stage on a Dask cluster (``execution.engine: dask``), for the gbdt proxy.
 
-The driver keeps only the small per-row arrays of the :class:`~leanset.table.RowFrame` (labels,
+The driver keeps only the small per-row arrays of the :class:`~leanset.load.table.RowFrame` (labels,
 folds, holdout). The input parquet files are cut into partitions of whole row groups, sliced to
 at most ``execution.batch_rows`` rows and spread over the workers; each worker reads its
 partitions, encodes them into float32 features as the load stage does, and keeps the training
@@ -10,9 +10,9 @@ contiguous slice of ``frame.train``.
 Each fold model is one ``lightgbm.dask`` fit on the rows with fold != k. Its checkpoints are
 replayed on the workers, partition by partition: raw scores are predicted tree range by tree range
 (``checkpoint_every`` trees at a time) and summed, and folded into the same
-:class:`~leanset.scores.Dynamics` (:class:`~leanset.scores.ResidualDynamics` for regression) as
+:class:`~leanset.scores.dynamics.Dynamics` (:class:`~leanset.scores.dynamics.ResidualDynamics` for regression) as
 the local score stage, so every column means what it means there. Out-of-fold predictions come
-from the same pass. Repeats and the AUM threshold samples run as in :func:`leanset.scores.score`.
+from the same pass. Repeats and the AUM threshold samples run as in :func:`leanset.scores.dynamics.score`.
 
 How a proxy is fitted is ``execution.dask_fits``:
 
@@ -47,11 +47,11 @@ import pyarrow as pa
 import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
-from .config import SCORE_NAMES, Config, ExecutionConfig, ProxyConfig
-from .errors import ConfigError, InputError
-from .proxy import FittedProxy, binary_logits, binned_dataset, fit_proxy, gbdt_params, n_checkpoints, proba_matrix
-from .scores import Dynamics, ResidualDynamics, Scores, aum_cutoff, margin, repeat_folds, residual_band, stability, threshold_config
-from .table import RowFrame, encode_columns
+from ..config import SCORE_NAMES, Config, ExecutionConfig, ProxyConfig
+from ..errors import ConfigError, InputError
+from ..models.proxy import FittedProxy, binary_logits, binned_dataset, fit_proxy, gbdt_params, n_checkpoints, proba_matrix
+from .dynamics import Dynamics, ResidualDynamics, Scores, aum_cutoff, margin, repeat_folds, residual_band, stability, threshold_config
+from ..load.table import RowFrame, encode_columns
 
 try:
     import dask.array as da
@@ -231,7 +231,7 @@ class _AskedOrder:
 def fit_booster(shards: Shards, rows: np.ndarray, labels: np.ndarray, n_classes: int, categorical: list[int],
                 config: ProxyConfig, seed: int) -> lgb.Booster:
     """``lightgbm.dask`` fit of the gbdt proxy on the rows where ``rows`` is set, with the params of
-    :func:`leanset.proxy.gbdt_params` (objective and ``num_class`` included) and ``config.rounds`` trees.
+    :func:`leanset.models.proxy.gbdt_params` (objective and ``num_class`` included) and ``config.rounds`` trees.
 
     Classes are fitted through ``DaskLGBMRegressor`` too: it hands the label codes to LightGBM as
     they are, as ``lightgbm.train`` gets them locally, whereas ``DaskLGBMClassifier`` re-encodes
@@ -248,7 +248,7 @@ def fit_booster(shards: Shards, rows: np.ndarray, labels: np.ndarray, n_classes:
 def fit_whole(frame: RowFrame, rows: np.ndarray | None, labels: np.ndarray, n_classes: int, config: Config, seed: int) -> str:
     """Fit one gbdt proxy whole, as the local engine does (a worker task); its model text.
 
-    The training rows are read and binned as :func:`leanset.scores.score` bins them, then the fit
+    The training rows are read and binned as :func:`leanset.scores.dynamics.score` bins them, then the fit
     runs on the rows ``rows`` (positions among the training rows; all when None) with ``labels``.
     LightGBM gets the worker's thread count unless ``proxy.params`` sets ``num_threads``.
     """
@@ -297,7 +297,7 @@ def shard_scores(X: np.ndarray, y: np.ndarray, fold: np.ndarray, models: list[st
                  el2n_at: int, band: float) -> pd.DataFrame:
     """Scores of one shard's rows from the fold models (model texts, fold order): a worker task.
 
-    Columns as :func:`leanset.scores.score` computes them for one repeat, plus ``never_learned``.
+    Columns as :func:`leanset.scores.dynamics.score` computes them for one repeat, plus ``never_learned``.
     """
     n = len(y)
     dyn = Dynamics(n, el2n_at) if n_classes else ResidualDynamics(n, el2n_at, band)
@@ -346,7 +346,7 @@ def _cross_fit(fitter: Fitter, y, fold, n_classes, pc: ProxyConfig, seeds) -> tu
 
 
 def threshold_samples(fitter: Fitter, y: np.ndarray, n_classes: int, config: ProxyConfig, seed: int) -> tuple[np.ndarray, dict]:
-    """:func:`leanset.scores.threshold_samples` with the cluster's fits: same slices, seeds, cut-offs and verdicts."""
+    """:func:`leanset.scores.dynamics.threshold_samples` with the cluster's fits: same slices, seeds, cut-offs and verdicts."""
     config = threshold_config(config)
     T, every = n_checkpoints(config), config.checkpoint_every
     shards = fitter.shards
@@ -358,7 +358,7 @@ def threshold_samples(fitter: Fitter, y: np.ndarray, n_classes: int, config: Pro
 
 
 def score(frame: RowFrame, config: Config, client: Client) -> Scores:
-    """:func:`leanset.scores.score` on the Dask cluster of ``client``: same folds, seeds, columns and ``info`` keys.
+    """:func:`leanset.scores.dynamics.score` on the Dask cluster of ``client``: same folds, seeds, columns and ``info`` keys.
 
     Returns
     -------

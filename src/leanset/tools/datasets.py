@@ -9,7 +9,7 @@ import numpy as np
 import pandas as pd
 from sklearn import datasets
 
-from .errors import ConfigError
+from ..errors import ConfigError
 
 BUNDLED = {
     "digits": datasets.load_digits,

@@ -34,18 +34,14 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from .config import Config, ProxyConfig, SCORE_NAMES
-from .errors import ConfigError
-from .proxy import FittedProxy, binned_dataset, fit_proxy, n_checkpoints, softmax
-from .table import RowFrame, release_memory
-from .verify import fit_target
+from ..config import Config, ProxyConfig, SCORE_NAMES
+from ..difficulty import DIFFICULTY_SIGN
+from ..errors import ConfigError
+from ..models.proxy import FittedProxy, binned_dataset, fit_proxy, n_checkpoints, softmax
+from ..load.table import RowFrame, release_memory
+from ..models.target import fit_target
 
 CHUNK = 65_536
-#: Sign that turns each score into a difficulty (higher = harder).
-DIFFICULTY_SIGN = {
-    "forgetting": 1.0, "aum": -1.0, "el2n": 1.0, "confidence": -1.0, "variability": 1.0,
-    "correctness": -1.0, "aleatoric": 1.0, "oof_loss": 1.0, "oof_margin": -1.0,
-}
 
 
 def _other_max(values: np.ndarray, y: np.ndarray) -> np.ndarray:

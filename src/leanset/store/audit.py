@@ -20,8 +20,8 @@ from typing import TYPE_CHECKING, Any, Sequence
 
 import duckdb
 
-from .config import SCORE_NAMES, Config
-from .errors import StoreError
+from ..config import SCORE_NAMES, Config
+from ..errors import StoreError
 
 if TYPE_CHECKING:
     import pyarrow as pa
@@ -351,7 +351,7 @@ def _original_rows(run: dict[str, Any], picked: pa.Table) -> pa.Table:
     import pandas as pd
     import pyarrow as pa
 
-    from .table import load_table
+    from ..load.table import load_table
 
     config = Config.model_validate(run["config"])
     frame = load_table(config)

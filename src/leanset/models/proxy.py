@@ -23,8 +23,9 @@ from sklearn.linear_model import SGDClassifier, SGDRegressor
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import OneHotEncoder, StandardScaler
 
-from .config import ProxyConfig
-from .table import release_memory
+from ..config import ProxyConfig
+from ._lightgbm import training_scores
+from ..load.table import release_memory
 
 Checkpoint = Callable[[int, np.ndarray], None]
 _EPS = 1e-300
@@ -163,7 +164,7 @@ def fit_gbdt(X, y, n_classes, categorical, config: ProxyConfig, seed: int, on_ch
         nonlocal t
         if (env.iteration + 1) % config.checkpoint_every == 0:
             t += 1
-            raw = np.asarray(env.model._Booster__inner_predict(data_idx=0), dtype=np.float64)
+            raw = training_scores(env.model)
             on_checkpoint(t, _LogProba(raw) if n_classes else raw)
 
     booster = lgb.train(params, data, num_boost_round=config.rounds, callbacks=[record])

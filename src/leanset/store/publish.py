@@ -28,14 +28,15 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from .audit import published_runs
-from .config import SCORE_NAMES, Config
-from .errors import StoreError
-from .select import Selection, class_percentile
+from ..config import SCORE_NAMES, Config
+from ..errors import StoreError
+from ..difficulty import DIFFICULTY_SIGN, class_percentile
 
 if TYPE_CHECKING:  # the audit commands import this module: keep the model libraries out of their start-up
-    from .scores import Scores
-    from .table import RowFrame
-    from .verify import Verdict
+    from ..scores.dynamics import Scores
+    from ..select.rules import Selection
+    from ..load.table import RowFrame
+    from ..verify.stats import Verdict
 
 PACKAGES = ("leanset", "numpy", "pandas", "pyarrow", "scikit-learn", "lightgbm", "scipy", "prefect", "pydantic")
 
@@ -101,7 +102,7 @@ def lineage(config: Config) -> str:
     the runs of one lineage form one history.
 
     The fraction is left out so that a run whose fraction was searched (``auto``) or changed
-    still links to its parent; its quotas change and :func:`leanset.select.stabilise` follows them.
+    still links to its parent; its quotas change and :func:`leanset.select.rules.stabilise` follows them.
     ``execution.batch_rows`` and ``feature_memory_mb`` change no decision (``tests/test_stream.py``).
     """
     data = config.model_dump(mode="json")
@@ -146,8 +147,6 @@ class ParentRun:
 
 def read_parent(config: Config) -> ParentRun | None:
     """The last published run of this config's lineage in its store, or None."""
-    from .scores import DIFFICULTY_SIGN
-
     mine = lineage(config)
     runs = [r for r in published_runs(config.store) if r.get("lineage") == mine]
     if not runs:
@@ -281,7 +280,7 @@ def _write_kept(frame: RowFrame, selection: Selection, path: Path, row_group_siz
 
 
 def _write_locked(frame, scores, selection, verdict, config, timings, parent, extra, files) -> Path:
-    from .report_html import render_html
+    from ..report.html import render_html
 
     t0 = time.perf_counter()
     runs = config.store / "runs"

@@ -19,8 +19,8 @@ import pyarrow.csv as pacsv
 import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
-from .config import REGRESSION_METRICS, Config
-from .errors import ConfigError, InputError
+from ..config import REGRESSION_METRICS, Config
+from ..errors import ConfigError, InputError
 
 #: Columns leanset adds to its outputs; an input column of the same name would be shadowed.
 RESERVED = ("weight",)
@@ -343,7 +343,7 @@ def _derive_ids(content: np.ndarray) -> pa.ChunkedArray:
     return pa.chunked_array(chunks, pa.string())
 
 
-def _split(row_id: np.ndarray, y: np.ndarray, fraction: float, folds: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
+def split_rows(row_id: np.ndarray, y: np.ndarray, fraction: float, folds: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
     """Stratified holdout and fold assignment from seeded hashes of the row ids."""
     key = _hash_key("holdout", seed)
     # hashed a step at a time: a string array becomes Python objects only one step at a time
@@ -536,7 +536,7 @@ def load_table(config: Config) -> RowFrame:
         y = pd.Categorical(label, categories=classes).codes.astype(np.int32)
         bins = None
 
-    holdout, fold = _split(row_id, y if bins is None else bins, config.holdout.fraction, config.proxy.folds, config.seed)
+    holdout, fold = split_rows(row_id, y if bins is None else bins, config.holdout.fraction, config.proxy.folds, config.seed)
     release_memory()
     return RowFrame(
         row_id=row_id, y=y, classes=classes, X=X,

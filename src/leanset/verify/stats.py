@@ -10,26 +10,17 @@ when the kept model's calibration is surely worse than the full model's by more 
 
 from __future__ import annotations
 
-import importlib
-import time
 from dataclasses import dataclass
 from typing import Any
 
-import lightgbm as lgb
 import numpy as np
 from scipy import stats
 from sklearn import metrics
 
-from .config import REGRESSION_METRICS, TargetConfig, VerifyConfig
-from .errors import ConfigError
-from .proxy import BatchSequence
-from .table import RowView
+from ..config import REGRESSION_METRICS, TargetConfig, VerifyConfig
+from ..errors import ConfigError
+from ..models.target import FittedTarget, fit_timed
 
-LIGHTGBM_DEFAULTS: dict[str, Any] = {
-    "learning_rate": 0.05, "num_leaves": 63, "min_data_in_leaf": 20, "feature_fraction": 0.9,
-    "verbose": -1, "deterministic": True, "force_col_wise": True, "num_threads": 2,
-}
-LIGHTGBM_ROUNDS = 300
 #: +1 when higher is better.
 ORIENTATION = {"accuracy": 1, "balanced_accuracy": 1, "macro_f1": 1, "roc_auc": 1, "log_loss": -1,
                "rmse": -1, "mae": -1, "r2": 1}
@@ -149,65 +140,6 @@ def mcnemar_exact(correct_a: np.ndarray, correct_b: np.ndarray) -> dict[str, flo
     c = int(np.sum(~correct_a & correct_b))
     p = 1.0 if b + c == 0 else min(1.0, 2.0 * stats.binom.cdf(min(b, c), b + c, 0.5))
     return {"a_only": b, "b_only": c, "p_value": float(p)}
-
-
-@dataclass
-class FittedTarget:
-    """A trained target model; ``booster`` is set for LightGBM, ``estimator`` for scikit-learn."""
-
-    n_classes: int
-    booster: lgb.Booster | None = None
-    estimator: Any = None
-
-    def predict_proba(self, X: np.ndarray) -> np.ndarray:
-        """Class probabilities, shape (n, n_classes), columns in class-code order; predicted values (n,) for regression."""
-        if self.n_classes == 0:
-            return (self.booster if self.booster is not None else self.estimator).predict(X).astype(np.float64)
-        if self.booster is not None:
-            p = self.booster.predict(X)
-            return np.column_stack((1 - p, p)) if p.ndim == 1 else p
-        out = np.zeros((len(X), self.n_classes))
-        out[:, self.estimator.classes_.astype(int)] = self.estimator.predict_proba(X)
-        return out
-
-
-def _sklearn_estimator(config: TargetConfig, seed: int):
-    if not config.estimator:
-        raise ConfigError("target.estimator: required when target.family is sklearn; give an import path such as sklearn.ensemble.HistGradientBoostingClassifier")
-    module, _, name = config.estimator.rpartition(".")
-    try:
-        cls = getattr(importlib.import_module(module), name)
-    except (ImportError, AttributeError):
-        raise ConfigError(f"target.estimator: cannot import '{config.estimator}'; check the module path and class name") from None
-    params = dict(config.params)
-    if "random_state" in cls().get_params():
-        params.setdefault("random_state", seed)
-    try:
-        return cls(**params)
-    except TypeError as exc:
-        raise ConfigError(f"target.params: {exc}; fix the parameters of {config.estimator}") from None
-
-
-def fit_target(X: np.ndarray, y: np.ndarray, weight: np.ndarray | None, n_classes: int,
-               categorical: list[int], config: TargetConfig, seed: int) -> FittedTarget:
-    """Train the configured target on (X, y) with optional per-row weights.
-
-    ``X`` may be a :class:`~leanset.table.RowView` (features not held): LightGBM then reads it
-    through its ``Sequence`` interface, batch by batch; a scikit-learn estimator gets it gathered.
-    """
-    if isinstance(X, RowView):
-        X = np.asarray(X) if config.family == "sklearn" else BatchSequence(X.batches, len(X), X.batch_rows)
-    if config.family == "sklearn":
-        est = _sklearn_estimator(config, seed)
-        est.fit(X, y, sample_weight=weight) if weight is not None else est.fit(X, y)
-        return FittedTarget(n_classes, estimator=est)
-    params = {**LIGHTGBM_DEFAULTS, **config.params, "seed": seed}
-    rounds = int(params.pop("num_boost_round", params.pop("n_estimators", LIGHTGBM_ROUNDS)))
-    params.update({"objective": "multiclass", "num_class": n_classes} if n_classes > 2 else {"objective": "binary"})
-    if n_classes == 0:
-        params = {k: v for k, v in params.items() if k != "num_class"} | {"objective": "regression"}
-    data = lgb.Dataset(X, label=y, weight=weight, categorical_feature=categorical or "auto")
-    return FittedTarget(n_classes, booster=lgb.train(params, data, num_boost_round=rounds))
 
 
 @dataclass
@@ -403,14 +335,6 @@ def _calibration_report(y_hold, proba, random_proba, cmp: Comparison, config: Ve
     for which, ps in (("full", [proba["full"]]), ("kept", [proba["kept"]]), ("random", random_proba)):
         out[f"{which}_ci"] = list(calibration_interval(y_hold, ps, config.bootstrap, config.confidence, rng))
     return {**out, **cmp.calibration_excess}
-
-
-def fit_timed(X: np.ndarray, y: np.ndarray, weight: np.ndarray | None, n_classes: int, categorical: list[int],
-              target: TargetConfig, seed: int) -> tuple[FittedTarget, float]:
-    """``fit_target`` and its wall time in seconds."""
-    t0 = time.perf_counter()
-    model = fit_target(X, y, weight, n_classes, categorical, target, seed)
-    return model, time.perf_counter() - t0
 
 
 def verify(X_train: np.ndarray, y_train: np.ndarray, keep: np.ndarray, weight: np.ndarray,

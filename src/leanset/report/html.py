@@ -14,7 +14,7 @@ from typing import Any
 
 import numpy as np
 
-from .config import SCORE_NAMES
+from ..config import SCORE_NAMES
 
 #: Section ids of report.html, in page order.
 SECTIONS = ("verdict", "metrics", "composition", "scores", "churn", "frontier", "cautions")
