@@ -66,13 +66,13 @@ class SelectionConfig(_Section):
     grid: list[Annotated[float, Field(gt=0, le=1)]] = Field(default_factory=lambda: [0.05, 0.1, 0.2, 0.3, 0.5, 0.7], min_length=1)
     strategy: Literal["stratified", "hardest", "easiest", "random", "importance"] = "stratified"
     score: Literal[SCORE_NAMES] = "aum"  # type: ignore[valid-type]
-    quotas: Literal["balanced", "proportional"] = "proportional"
+    quotas: Literal["balanced", "proportional"] = "balanced"
     class_floor: int = Field(50, ge=0)
     strata: int = Field(50, ge=1)
-    hard_cut: float = Field(0.0, ge=0, lt=1)
+    hard_cut: float = Field(0.05, ge=0, lt=1)
     weights: Literal["class_prior", "none"] = "class_prior"
     hysteresis: float = Field(0.1, ge=0, le=1)
-    drop_suspect_labels: bool = True
+    drop_suspect_labels: bool = False
     segment_floor: int = Field(20, ge=0)
     dedupe: bool = True
     validation: float = Field(0.2, gt=0, lt=1)
