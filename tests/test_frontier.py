@@ -105,3 +105,35 @@ def test_frontier_and_auto_through_the_cli(prefect_api, cancer, tmp_path):
     assert run["config"]["selection"]["fraction"] == run["search"]["fraction"]
     passing = [t["fraction"] for t in tried if t["status"] == "pass"]
     assert run["search"]["fraction"] == (min(passing) if passing else 1.0)
+
+
+def test_search_goes_below_the_smallest_grid_point_and_names_blocking_guards():
+    # The smallest grid point passes: bisection between 0 and it (common practice, no source).
+    ev = _Scripted(0.02)
+    fraction, tried = search_fraction(ev, "importance", grid=[0.1, 0.2], steps=3)
+    assert ev.seen == [0.1, 0.05, 0.025, 0.0125] and fraction == 0.025
+
+
+def test_auto_never_reads_the_holdout(cancer, monkeypatch):
+    # scikit-learn's bundled breast_cancer. The holdout's features are poisoned (NaN) and every
+    # feature read is recorded: the choice must not change and no holdout row may be read.
+    from dataclasses import replace
+
+    from leanset.load.table import RowFrame
+    from leanset.verify.frontier import choose_fraction
+
+    config = load_config(cancer)
+    frame = load_table(config)
+    scores = score(frame, config)
+    fraction, tried = choose_fraction(frame, scores, config)
+    X = frame.X.copy()
+    X[frame.holdout] = np.nan
+    poisoned = replace(frame, X=X)
+    read = []
+    original = RowFrame.features
+    monkeypatch.setattr(RowFrame, "features", lambda self, rows: read.append(np.asarray(rows)) or original(self, rows))
+    fraction2, tried2 = choose_fraction(poisoned, scores, config)
+    assert read and not frame.holdout[np.concatenate(read)].any()
+    assert fraction2 == fraction
+    assert [(t["fraction"], t["status"], t["metric"]) for t in tried2] == [(t["fraction"], t["status"], t["metric"]) for t in tried]
+    assert all("validation slice" in t["judge"] and "blocked_by" in t for t in tried)

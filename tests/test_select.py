@@ -27,8 +27,9 @@ from leanset.load.table import load_table
 from leanset.models.target import fit_target
 from leanset.verify.stats import metric_value
 
-STRATEGIES = ("stratified", "hardest", "easiest", "random")
-KEEP_REASON = {"stratified": "keep:stratum", "hardest": "keep:hard", "easiest": "keep:easy", "random": "keep:random"}
+STRATEGIES = ("stratified", "hardest", "easiest", "random", "importance")
+KEEP_REASON = {"stratified": "keep:stratum", "hardest": "keep:hard", "easiest": "keep:easy", "random": "keep:random",
+               "importance": "keep:sampled"}
 
 
 def _imbalanced(seed: int = 0, sizes=(600, 250, 80, 20)):

@@ -250,8 +250,10 @@ class _Scripted:
 
 
 def _scripted_verify(monkeypatch, kept_wrong, metric="accuracy", tolerance=0.02, class_tolerance=0.5,
-                     p_full=1.0, p_kept=1.0):
-    """Holdout of 200 rows, 4 classes; full right everywhere, kept wrong on ``kept_wrong`` rows."""
+                     p_full=1.0, p_kept=1.0, calibration_tolerance=np.inf):
+    """Holdout of 200 rows, 4 classes; full right everywhere, kept wrong on ``kept_wrong`` rows.
+
+    The calibration guard is out of reach unless ``calibration_tolerance`` is given (it has its own tests)."""
     k, n_hold, n_train = 4, 200, 100
     y_hold = np.arange(n_hold) % k
 
@@ -273,7 +275,7 @@ def _scripted_verify(monkeypatch, kept_wrong, metric="accuracy", tolerance=0.02,
     v = verify_rows(X_train, np.arange(n_train) % k, keep, np.ones(n_train), np.zeros((n_hold, 1)), y_hold,
                     classes=[f"c{c}" for c in range(k)], categorical=[], target=LGBM,
                     config=VerifyConfig(metric=metric, tolerance=tolerance, class_tolerance=class_tolerance, bootstrap=200,
-                                        random_repeats=2), seed=0)
+                                        random_repeats=2, calibration_tolerance=calibration_tolerance), seed=0)
     assert sorted(r for r, _, _ in fake.calls) == ["full", "kept", "random", "random"]
     return v, probas
 

@@ -541,6 +541,37 @@ def bench_economics_command(
             typer.echo(line)
 
 
+@bench_app.command("suite")
+def bench_suite_command(
+    quick: bool = typer.Option(False, "--quick", help="CI-sized invented tables (4,000 rows) and a 100-round target."),
+    tables: Optional[str] = typer.Option(None, help="Only these suite tables, comma-separated."),
+    rows: Optional[int] = typer.Option(None, min=500, help="Rows of the invented tables (default 200,000, or 4,000 with --quick)."),
+    set_: list[str] = typer.Option([], "--set", help="A selection key to measure instead of its default, KEY=VALUE (YAML value); repeatable."),
+    seed: int = typer.Option(0, help="seed (of the tables and the runs)."),
+) -> None:
+    """The default selection rule against same-size random subsets over a fixed list of tables; the last line is below_random=N above_mean=M points=P"""
+    import yaml
+
+    from .errors import ConfigError
+    from .tools.suite import TABLES, run_suite
+
+    names = None if tables is None else [t.strip() for t in tables.split(",") if t.strip()]
+    unknown = sorted(set(names or []) - {t.name for t in TABLES})
+    if unknown:
+        _fail(ConfigError(f"--tables: unknown table {', '.join(unknown)}; choose from {', '.join(t.name for t in TABLES)}"))
+    selection = {}
+    for item in set_:
+        key, eq, value = item.partition("=")
+        if not eq:
+            _fail(ConfigError(f"--set {item}: write it as KEY=VALUE, e.g. --set quotas=balanced"))
+        selection[key.strip().removeprefix("selection.")] = yaml.safe_load(value)
+    try:
+        for line in run_suite(quick=quick, seed=seed, selection=selection, tables=names, rows=rows):
+            typer.echo(line)
+    except LeansetError as exc:
+        _fail(exc)
+
+
 def main() -> None:
     """Console-script entry point.
 

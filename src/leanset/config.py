@@ -98,8 +98,9 @@ class SelectionConfig(_Section):
         "Share of the training rows to keep, or `auto`: the smallest fraction that passes verification."))
     grid: list[Annotated[float, Field(gt=0, le=1)]] = Field(default_factory=lambda: [0.05, 0.1, 0.2, 0.3, 0.5, 0.7], min_length=1, description=(
         "Fractions tried by `fraction: auto` and by `leanset frontier`."))
-    strategy: Literal["stratified", "hardest", "easiest", "random"] = Field("stratified", description=(
-        "Selection rule within each class: `stratified`, `hardest`, `easiest` or `random`."))
+    strategy: Literal["stratified", "hardest", "easiest", "random", "importance"] = Field("stratified", description=(
+        "Selection rule within each class: `stratified`, `hardest`, `easiest`, `random` or `importance` (a tilted "
+        "draw reweighted by 1/inclusion probability; docs/selection.md)."))
     score: Literal[SCORE_NAMES] = Field("aum", description=(  # type: ignore[valid-type]
         "The score column that ranks difficulty; leanset orients it so that higher means harder."))
     quotas: Literal["balanced", "proportional"] = Field("balanced", description=(
@@ -125,6 +126,12 @@ class SelectionConfig(_Section):
     dedupe: bool = Field(True, description=(
         "Exact duplicates (same features and label) collapse to their first occurrence, which carries "
         "`dup_count`."))
+    validation: float = Field(0.2, gt=0, lt=1, description=(
+        "`fraction: auto`: share of the training rows (stratified, seeded) held aside to choose the fraction, so "
+        "the holdout judges the chosen fraction once."))
+    tilt: Annotated[float, Field(gt=-1, lt=1)] | Literal["auto"] = Field("auto", description=(
+        "`importance`: how far the draw leans toward hard rows (positive) or easy rows (negative); `auto` sets it "
+        "from the fraction."))
 
 
 class TargetConfig(_Section):
@@ -152,6 +159,9 @@ class VerifyConfig(_Section):
     class_tolerance: float = Field(0.10, ge=0, description="Largest acceptable drop of any class's recall.")
     segment_tolerance: float = Field(0.05, ge=0, description=(
         "Largest acceptable Δ of the metric within any segment value."))
+    calibration_tolerance: float = Field(0.25, ge=0, description=(
+        "Largest acceptable relative excess of the kept model's calibration loss (Brier score, or log loss with "
+        "more than two classes) over the full model's; the guard fails when the interval's lower end is above it."))
     random_repeats: int = Field(3, ge=1, description=(
         "Same-size uniform random subsets trained for the baseline; their spread widens the random interval."))
     bootstrap: int = Field(1000, ge=100, description="Paired bootstrap resamples of the holdout.")

@@ -40,7 +40,7 @@ from .scores.dynamics import Scores, agreement, score  # noqa: E402
 from .select.rules import Selection, select_frame, stabilise  # noqa: E402
 from .store.publish import (CarriedVerdict, ParentRun, VerifyPlan, plan_verification, read_parent,  # noqa: E402
                             store_lock, write_run)
-from .verify.frontier import FractionEvaluator, frontier_files, search_fraction, sweep  # noqa: E402
+from .verify.frontier import FractionEvaluator, choose_fraction, frontier_files, sweep  # noqa: E402
 from .verify.stats import Verdict, verify  # noqa: E402
 
 logger = logging.getLogger(__name__)
@@ -134,8 +134,8 @@ def full_fit_task(frame: RowFrame, scores: Scores, config: Config) -> FractionEv
 
 @task(name="search-fraction", cache_policy=NO_CACHE)
 @_stage("search-fraction")
-def search_task(evaluator: FractionEvaluator, config: Config) -> tuple[float, list[dict]]:
-    return search_fraction(evaluator, config.selection.strategy, config.selection.grid)
+def search_task(frame: RowFrame, scores: Scores, config: Config) -> tuple[float, list[dict]]:
+    return choose_fraction(frame, scores, config)
 
 
 @task(name="frontier", cache_policy=NO_CACHE)
@@ -199,17 +199,18 @@ def run_stages(config: Config, stages: SimpleNamespace = TASKS, wait: float = 0.
             scores = stages.score(frame, config, use_cache)
             scores.info["agreement"] = stages.agreement(frame, scores, config)
             auto = config.selection.fraction == "auto"
-            evaluator = stages.fit_full(frame, scores, config) if auto or frontier else None
+            evaluator = stages.fit_full(frame, scores, config) if frontier else None
             extra: dict[str, Any] = {}
-            if auto:
-                fraction, tried = stages.search(evaluator, config)
+            if auto:  # chosen on a validation slice of the training rows; the holdout judges it once, in verify
+                fraction, tried = stages.search(frame, scores, config)
                 extra["search"] = {"strategy": config.selection.strategy, "fraction": fraction, "tried": tried}
                 config = config.model_copy(update={"selection": config.selection.model_copy(update={"fraction": fraction})})
             selection = stages.select(frame, scores, config)
             if parent is not None:
                 selection = stages.stabilise(frame, scores, selection, parent, config)
             # the cadence applies when no full-data fit was made for the fraction search or the frontier
-            plan = stages.plan(frame, selection, config) if evaluator is None else VerifyPlan(True, "full-data fit already made")
+            plan = (stages.plan(frame, selection, config) if evaluator is None and not auto
+                    else VerifyPlan(True, "fraction searched or frontier swept: verified"))
             extra["verification"] = {"verified": plan.verify, "reason": plan.reason}
             verdict = stages.verify(frame, selection, config, evaluator) if plan.verify else CarriedVerdict(plan)
             files: dict[str, bytes] = {}

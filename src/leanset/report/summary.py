@@ -46,12 +46,17 @@ def summary(run: dict[str, Any], run_dir: str | Path) -> Table:
     table.add_row("class recall", " · ".join(f"{name} {r['full']:.2f}→{r['kept']:.2f}" for name, r in v["per_class_recall"].items()))
     if v.get("calibration"):
         cal, name = v["calibration"], "Brier score" if len(v["per_class_recall"]) == 2 else "log loss"
+        guard = ""
+        if "excess" in cal:
+            guard = (f"; kept {cal['excess']:+.1%} against full, CI [{cal['ci'][0]:+.1%}, {cal['ci'][1]:+.1%}], "
+                     f"guard {'FAILED' if cal['failed'] else 'ok'} at +{cal['tolerance']:.0%}")
         table.add_row("calibration", f"{name} (lower is better): full {cal['full']:.4f} · kept {cal['kept']:.4f} · "
-                      f"random {cal['random']:.4f}")
+                      f"random {cal['random']:.4f}{guard}")
     if v["failed_classes"]:
         table.add_row("class guard", "recall dropped too far for: " + ", ".join(v["failed_classes"]))
     if "search" in run:
-        tried = ", ".join(f"{t['fraction']:g} {t['status']}" for t in run["search"]["tried"])
+        tried = ", ".join(f"{t['fraction']:g} {t['status']}" + (f" ({t['blocked_by']})" if t.get("blocked_by") else "")
+                          for t in run["search"]["tried"])
         found = run["search"]["fraction"]
         head = f"smallest passing {found:g}" if found < 1 else "no grid fraction passed; all rows kept"
         table.add_row("fraction search", f"{head} (tried {tried})")

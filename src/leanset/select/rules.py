@@ -10,6 +10,13 @@ rows of its order. Strategies:
   difficulty into ``strata`` equal-width bins, and the budget is filled evenly across bins, so a
   small bin keeps all its rows and what it leaves goes to the larger ones.
 - ``random``: uniform, the baseline.
+- ``importance``: importance sampling with Horvitz–Thompson weights. Each row of a class is
+  drawn with inclusion probability π_i ∝ 1 + t·(2 r_i − 1), capped at 1 and summing to the
+  quota (r_i: the row's difficulty percentile in its class; t: ``selection.tilt``), by
+  systematic sampling, so the quota is met exactly; a kept row weighs 1/π_i (scaled so each
+  class keeps its weight), so the weighted kept rows stand for the whole class and the
+  model's calibration is kept. ``tilt: auto`` follows Sorscher et al. (NeurIPS 2022): toward
+  easy rows when little is kept, toward hard ones when much is (see :func:`auto_tilt`).
 
 Exact duplicates (same features and label) collapse to their first occurrence first. Within a
 class, segments (``input.segments``) share the quota in proportion to their size, and each
@@ -32,7 +39,8 @@ from ..difficulty import class_percentile
 from ..reasons import REASONS  # noqa: F401  (the codes this stage writes; defined below the stages for the reports)
 
 logger = logging.getLogger(__name__)
-_KEEP_REASON = {"stratified": "keep:stratum", "hardest": "keep:hard", "easiest": "keep:easy", "random": "keep:random"}
+_KEEP_REASON = {"stratified": "keep:stratum", "hardest": "keep:hard", "easiest": "keep:easy", "random": "keep:random",
+                "importance": "keep:sampled"}
 
 
 @dataclass
@@ -118,15 +126,56 @@ def _strata(d: np.ndarray, n_strata: int) -> np.ndarray:
     return np.minimum(((d - lo) / (hi - lo) * n_strata).astype(np.int64), n_strata - 1).astype(np.int16)
 
 
+def auto_tilt(fraction: float) -> float:
+    """The ``importance`` tilt for ``tilt: auto``: 2·fraction − 0.4, clipped to [−0.5, 0.8].
+
+    Negative (toward easy rows) below 20 % kept, toward hard rows above; after Sorscher et al.
+    (NeurIPS 2022), whose best pruning keeps easy examples when little data is kept and hard ones
+    when much is. The line itself is this project's choice, measured by ``leanset bench suite``.
+    """
+    return float(np.clip(2 * fraction - 0.4, -0.5, 0.8))
+
+
+def inclusion_probabilities(size: np.ndarray, quota: int) -> np.ndarray:
+    """π_i = min(1, c·size_i) with c set so that the π sum to ``quota`` (sizes > 0, quota ≤ n)."""
+    size = np.asarray(size, np.float64)
+    pi = np.zeros(len(size))
+    capped = np.zeros(len(size), bool)
+    for _ in range(len(size) + 1):
+        c = (quota - capped.sum()) / size[~capped].sum() if (~capped).any() else 0.0
+        pi = np.where(capped, 1.0, c * size)
+        over = ~capped & (pi >= 1.0)
+        if not over.any():
+            break
+        capped |= over
+    return np.minimum(pi, 1.0)
+
+
+def systematic_sample(pi: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+    """Indices drawn by systematic sampling in random order (Madow, 1949): row i is drawn with
+    probability ``pi[i]``, and exactly ``round(pi.sum())`` rows are drawn."""
+    perm = rng.permutation(len(pi))
+    upper = np.cumsum(pi[perm])
+    u = rng.random()
+    hits = np.floor(upper - u + 1e-12) - np.floor(np.concatenate(([0.0], upper[:-1])) - u + 1e-12)
+    return np.sort(perm[hits > 0])
+
+
 def _priority(d: np.ndarray, quota: int, config: SelectionConfig, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray, int]:
     """Priority order of one class's rows, their strata, and how many lead the order after a hard cut.
 
     Returns (order, stratum, n_cut): ``order`` lists local indices, best first; the last
-    ``n_cut`` entries are the rows removed by the hard cut (``stratified`` only).
+    ``n_cut`` entries are the rows removed by the hard cut (``stratified`` only). For
+    ``importance``, the first ``quota`` entries are the drawn rows.
     """
     n = len(d)
     tie = rng.random(n)
     stratum = np.full(n, -1, np.int16)
+    if config.strategy == "importance":
+        pi = _importance_pi(d, quota, config, tie)
+        drawn = np.zeros(n, bool)
+        drawn[systematic_sample(pi, rng)] = True
+        return np.lexsort((tie, -pi, ~drawn)), stratum, 0
     if config.strategy == "hardest":
         return np.lexsort((tie, -d)), stratum, 0
     if config.strategy == "easiest":
@@ -146,6 +195,14 @@ def _priority(d: np.ndarray, quota: int, config: SelectionConfig, rng: np.random
     within[shuffled] = np.arange(len(rest)) - starts
     order = rest[np.lexsort((tie[rest], within))]
     return np.concatenate((order, cut)), stratum, n_cut
+
+
+def _importance_pi(d: np.ndarray, quota: int, config: SelectionConfig, tie: np.ndarray) -> np.ndarray:
+    """Inclusion probabilities of one class's rows under ``importance`` (see the module docstring)."""
+    t = auto_tilt(config.fraction) if config.tilt == "auto" else config.tilt
+    rank = np.empty(len(d))
+    rank[np.lexsort((tie, d))] = (np.arange(len(d)) + 0.5) / len(d)  # difficulty percentile, hardest near 1
+    return inclusion_probabilities(1 + t * (2 * rank - 1), min(quota, len(d)))
 
 
 def find_duplicates(X: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -254,6 +311,16 @@ def select(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, seed:
                 reason[added] = "keep:floor"
                 segment_added += len(added)
 
+    if config.strategy == "importance":
+        # Horvitz–Thompson: 1/π of each drawn row, scaled to mean 1 within its class
+        ht = np.zeros(n)
+        for c in range(k):
+            rows = np.flatnonzero((y == c) & pool)
+            if len(rows):
+                ht[rows] = 1 / np.maximum(_importance_pi(difficulty[rows], int(quota[c]), config, np.zeros(len(rows))), 1e-12)
+        in_keep = np.flatnonzero(keep)
+        scale = np.bincount(y[in_keep], weights=ht[in_keep], minlength=k) / np.maximum(np.bincount(y[in_keep], minlength=k), 1)
+        ht[in_keep] /= np.where(scale[y[in_keep]] > 0, scale[y[in_keep]], 1.0)
     kept_counts = np.bincount(y[keep], minlength=k).astype(np.float64)
     if config.weights == "class_prior":
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -261,7 +328,7 @@ def select(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, seed:
     else:
         w = np.ones(k)
     weight = np.zeros(n)
-    weight[keep] = w[y[keep]]
+    weight[keep] = w[y[keep]] * (ht[keep] if config.strategy == "importance" else 1.0)
     info = {
         "budget": budget,
         "kept": int(keep.sum()),
@@ -313,14 +380,20 @@ def select_rows(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, 
     return Selection(**fields)
 
 
-def select_frame(frame, scores, config: Config, selection: SelectionConfig | None = None) -> Selection:
+def select_frame(frame, scores, config: Config, selection: SelectionConfig | None = None,
+                 rows: np.ndarray | None = None) -> Selection:
     """The select stage on a loaded ``RowFrame`` and its ``Scores``: difficulty by ``selection.score``,
     quotas over classes (label bins on a regression table) and segments, duplicates by feature
-    hash, suspected label errors; ``selection`` replaces ``config.selection`` when given."""
+    hash, suspected label errors; ``selection`` replaces ``config.selection`` when given.
+    ``rows`` (positions among the training rows) restricts the selection to those rows."""
     train, selection = frame.train, selection or config.selection
     logger.info("select: %s on %s, fraction %s of %d training rows", selection.strategy, selection.score, selection.fraction, len(train))
-    return select_rows(scores.difficulty(selection.score), frame.groups[train], selection, config.seed, suspect=scores.suspects(),
-                       segments=None if frame.segments is None else frame.segments[train], X=frame.feature_hash[train])
+    rows = np.arange(len(train)) if rows is None else rows
+    train = train[rows]
+    suspect = scores.suspects()
+    return select_rows(scores.difficulty(selection.score)[rows], frame.groups[train], selection, config.seed,
+                       suspect=None if suspect is None else suspect[rows], segments=None if frame.segments is None else frame.segments[train],
+                       X=frame.feature_hash[train])
 
 
 # --- Stable decisions over a growing table -------------------------------------------------

@@ -3,8 +3,9 @@
 Δ = metric(full) − metric(kept), oriented so that a positive Δ means the kept-row model is worse
 (for ``log_loss`` the sign flips). A paired bootstrap over holdout rows gives its interval; the
 verdict is ``pass`` when the upper bound is ≤ tolerance, ``fail`` when the lower bound is above
-it or when a class's recall drop is surely above ``class_tolerance`` (its interval's lower bound),
-``inconclusive`` otherwise.
+it, when a class's recall drop is surely above ``class_tolerance`` (its interval's lower bound) or
+when the kept model's calibration is surely worse than the full model's by more than
+``calibration_tolerance`` (see :func:`calibration_excess`), ``inconclusive`` otherwise.
 """
 
 from __future__ import annotations
@@ -147,7 +148,9 @@ def mcnemar_exact(correct_a: np.ndarray, correct_b: np.ndarray) -> dict[str, flo
 
 @dataclass
 class Comparison:
-    """Δ between two models' holdout predictions, with its interval and the class and segment guards."""
+    """Δ between two models' holdout predictions, with its interval and the class, segment and
+    calibration guards; ``blocked_by`` names each guard that kept the status from ``pass``
+    (``metric``, ``class``, ``segment``, ``calibration``)."""
 
     status: str
     delta: float
@@ -157,6 +160,8 @@ class Comparison:
     per_segment: dict[str, dict[str, Any]]
     failed_segments: list[str]
     mcnemar: dict[str, float]
+    calibration_excess: dict[str, Any]
+    blocked_by: list[str]
 
 
 def _safe_metric(name: str, y: np.ndarray, proba: np.ndarray) -> float:
@@ -219,7 +224,19 @@ def compare(y_hold: np.ndarray, proba_full: np.ndarray, proba_kept: np.ndarray, 
                 failed_segments.append(key)
             guards_clear &= s_hi <= config.segment_tolerance
 
-    if lo > config.tolerance or failed or failed_segments:
+    cal = {}
+    if proba_full.ndim == 2:
+        excess, e_lo, e_hi = calibration_excess(y_hold, proba_full, proba_kept, config.bootstrap, config.confidence, rng)
+        cal = {"excess": excess, "ci": [e_lo, e_hi], "tolerance": config.calibration_tolerance,
+               "failed": bool(e_lo > config.calibration_tolerance)}
+    blocked = [name for name, surely_bad, clear in (
+        ("metric", lo > config.tolerance, hi <= config.tolerance),
+        ("class", bool(failed), proba_full.ndim == 1 or bool(np.all(c_hi <= config.class_tolerance))),
+        ("segment", bool(failed_segments), all(s["ci"] is None or s["ci"][1] <= config.segment_tolerance
+                                               for s in per_segment.values())),
+        ("calibration", cal.get("failed", False), True),
+    ) if surely_bad or not clear]
+    if lo > config.tolerance or failed or failed_segments or cal.get("failed", False):
         status = "fail"
     elif hi <= config.tolerance and guards_clear:
         status = "pass"
@@ -227,7 +244,7 @@ def compare(y_hold: np.ndarray, proba_full: np.ndarray, proba_kept: np.ndarray, 
         status = "inconclusive"
     return Comparison(status=status, delta=float(delta), ci=(lo, hi), per_class_recall=recall, failed_classes=failed,
                       per_segment=per_segment, failed_segments=failed_segments,
-                      mcnemar=mc)
+                      mcnemar=mc, calibration_excess=cal, blocked_by=blocked)
 
 
 def calibration(y: np.ndarray, proba: np.ndarray) -> float:
@@ -235,6 +252,41 @@ def calibration(y: np.ndarray, proba: np.ndarray) -> float:
     if proba.shape[1] == 2:
         return float(metrics.brier_score_loss(y, proba[:, 1]))
     return metric_value("log_loss", y, proba)
+
+
+def row_calibration(y: np.ndarray, proba: np.ndarray) -> np.ndarray:
+    """Each row's share of :func:`calibration`: its mean over any rows is that rows' calibration.
+
+    Binary: the squared error of P(class 1); multiclass: −log of the label's probability,
+    clipped at 1e-15 as :func:`metric_value` does.
+    """
+    if proba.shape[1] == 2:
+        return (proba[:, 1] - (y == 1)) ** 2
+    return -np.log(np.clip(proba[np.arange(len(y)), y], 1e-15, 1.0))
+
+
+def calibration_interval(y: np.ndarray, probas: list[np.ndarray], n_resamples: int, confidence: float,
+                         rng: np.random.Generator) -> tuple[float, float]:
+    """Percentile interval of :func:`calibration` over stratified holdout resamples; with several
+    models (repeated random subsets), each resample is scored with one of them picked at random."""
+    losses = [row_calibration(y, p) for p in probas]
+    values = np.array([losses[rng.integers(len(losses))][i].mean() for i in _resamples(y, n_resamples, rng, stratify=True)])
+    lo, hi = _interval(values, confidence)
+    return float(lo), float(hi)
+
+
+def calibration_excess(y: np.ndarray, proba_full: np.ndarray, proba_kept: np.ndarray, n_resamples: int,
+                       confidence: float, rng: np.random.Generator) -> tuple[float, float, float]:
+    """How much worse the kept model's calibration is, relative to the full model's:
+    calibration(kept) / calibration(full) − 1, with its paired stratified bootstrap interval.
+
+    A relative excess reads the same for the Brier score and log loss, whose scales differ.
+    Returns (excess, lo, hi).
+    """
+    full, kept = row_calibration(y, proba_full), row_calibration(y, proba_kept)
+    ratios = np.array([kept[i].mean() / max(full[i].mean(), 1e-300) - 1 for i in _resamples(y, n_resamples, rng, stratify=True)])
+    lo, hi = _interval(ratios, confidence)
+    return float(kept.mean() / max(full.mean(), 1e-300) - 1), float(lo), float(hi)
 
 
 def metric_interval(y: np.ndarray, probas: list[np.ndarray], name: str, n_resamples: int, confidence: float,
@@ -276,6 +328,17 @@ class Verdict(Comparison):
         d = {k: v for k, v in self.__dict__.items() if k != "models"}
         d["ci"], d["random_ci"] = list(self.ci), list(self.random_ci)
         return d
+
+
+def _calibration_report(y_hold, proba, random_proba, cmp: Comparison, config: VerifyConfig, rng) -> dict[str, Any]:
+    """The verdict's ``calibration``: each model's value and interval, the kept model's excess and the guard."""
+    out: dict[str, Any] = {"name": "brier" if proba["full"].shape[1] == 2 else "log_loss"}
+    for which, p in proba.items():
+        out[which] = calibration(y_hold, p)
+    out["random"] = float(np.mean([calibration(y_hold, p) for p in random_proba]))
+    for which, ps in (("full", [proba["full"]]), ("kept", [proba["kept"]]), ("random", random_proba)):
+        out[f"{which}_ci"] = list(calibration_interval(y_hold, ps, config.bootstrap, config.confidence, rng))
+    return {**out, **cmp.calibration_excess}
 
 
 @dataclass(frozen=True)
@@ -387,6 +450,6 @@ def verify_rows(X_train: np.ndarray, y_train: np.ndarray, keep: np.ndarray, weig
         **vars(cmp), metric=m, full=metric_value(m, y_hold, proba["full"]),
         kept=metric_value(m, y_hold, proba["kept"]), random=random_value, random_ci=random_ci,
         tolerance=config.tolerance, metrics=report,
-        calibration={which: calibration(y_hold, p) for which, p in proba.items()} if k else {},
+        calibration=_calibration_report(y_hold, proba, random_proba, cmp, config, rng) if k else {},
         train_seconds=seconds, speedup=seconds["full"] / max(seconds["kept"], 1e-9), models=models,
     )
