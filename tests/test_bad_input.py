@@ -87,7 +87,7 @@ CASES = [
     ("config-missing-label", lambda d: ["run", _write(d / "c.yaml", yaml.safe_dump({"input": {"path": str(_table(d))}}))],
      ("input.label", "missing key")),
     ("config-fraction-above-one", lambda d: [*_cfg(d), "--fraction", "1.5"], ("selection.fraction",)),
-    ("config-strategy-unknown", lambda d: [*_cfg(d), "--strategy", "smartest"], ("selection.strategy",)),
+    ("config-strategy-unknown", lambda d: _cfg(d, selection__strategy="smartest"), ("selection.strategy",)),
     ("config-one-fold", lambda d: _cfg(d, proxy__folds=1), ("proxy.folds",)),
     ("config-holdout-all", lambda d: _cfg(d, holdout__fraction=1.0), ("holdout.fraction",)),
     ("config-metric-unknown", lambda d: _cfg(d, verify__metric="f2"), ("verify.metric",)),

@@ -324,7 +324,9 @@ def publish_task(run_dir: str) -> None:
 
 
 @flow(name="leanset-scheduled", log_prints=False)
-def scheduled_flow(config_path: str, wait: float = 0.0) -> State:
+def scheduled_flow(config_path: str, wait: float = 0.0) -> State | str:
     """A scheduled run over a growing table: the run, linked to its parent, with its artifacts; it
     ends Failed when the verdict is ``fail``."""
-    return prune_flow(config_path, None, wait, return_state=True)
+    state = prune_flow(config_path, None, wait, return_state=True)
+    # a failed run's state ends this flow Failed too; otherwise the run directory is the result
+    return state if state.is_failed() else state.result()

@@ -187,6 +187,9 @@ def task(table: pa.Table, config: Config) -> str:
 def _check_continuous_label(label, config: Config, path: Path) -> None:
     t = label.type
     if not (pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t)):
+        if config.input.task == "auto" and config.verify.metric in REGRESSION_METRICS:
+            raise ConfigError(f"verify.metric: {config.verify.metric} is a regression metric but label column '{config.input.label}' "
+                              f"holds classes (type {t}); use a classification metric such as accuracy, or a numeric label")
         raise InputError(f"{path}: label column '{config.input.label}' has type {t}; input.task regression needs a numeric label")
     if not np.all(np.isfinite(label.to_numpy().astype(np.float64))):
         raise InputError(f"{path}: label column '{config.input.label}' has infinite or NaN values; fill or drop those rows")
