@@ -13,7 +13,7 @@ import json
 from store_helpers import config, part, published, run_ok
 
 #: run.json entries that hold the run id, the clock or measured seconds.
-VARYING = {"run_id", "created", "timings"}
+VARYING = {"run_id", "created", "timings", "cost"}  # cost: the ledger of measured seconds
 VARYING_VERDICT = {"train_seconds", "speedup"}
 
 
@@ -24,6 +24,8 @@ def _comparable(run_dir) -> dict:
     for key in VARYING_VERDICT:
         run["verdict"].pop(key)
     run["scores"].pop("timings", None)
+    if run.get("agreement"):
+        run["agreement"].pop("seconds", None)  # the agreement check's measured seconds
     return run
 
 
