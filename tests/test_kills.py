@@ -75,8 +75,10 @@ def test_sigkill_at_twenty_seeded_moments(prefect_api, tmp_path):
         proc.wait(timeout=60)
         proc.communicate()
         killed += proc.returncode == -signal.SIGKILL
-        # a run either is published whole (it finished before the kill) or is not visible at all
-        assert len(published(store)) == before + (proc.returncode == 0), f"kill {i} in {stage} at {at:.2f} s"
+        # a run either is published whole or is not visible at all; a kill that lands after the
+        # atomic rename but before the process exits leaves a whole run, which is correct
+        grown = len(published(store)) - before
+        assert grown in ((1,) if proc.returncode == 0 else (0, 1)), f"kill {i} in {stage} at {at:.2f} s"
         for d in published(store):
             assert_conserved(d, ids)
         assert _lock_free(store), f"kill {i} in {stage}: the lock is still held"
