@@ -15,9 +15,10 @@ from scipy.stats import spearmanr
 from sklearn import metrics
 from sklearn.datasets import load_breast_cancer, load_diabetes
 
-import leanset.scores.dynamics as scores_mod
+import leanset.scores.target_agreement as agreement_mod
 from leanset.config import Config
-from leanset.scores.dynamics import agreement, score
+from leanset.scores.target_agreement import agreement
+from leanset.scores.dynamics import score
 from leanset.load.table import load_table
 
 ONE_THREAD = {"num_threads": 1}
@@ -42,7 +43,7 @@ def _table(tmp_path, loader, **input_extra):
 def _recorded(monkeypatch):
     """Spy on the target fits: every (training X, predicted X, predictions) triple."""
     calls = []
-    real = scores_mod.fit_target
+    real = agreement_mod.fit_target
 
     def spy(X, y, weight, n_classes, categorical, config, seed):
         model = real(X, y, weight, n_classes, categorical, config, seed)
@@ -55,7 +56,7 @@ def _recorded(monkeypatch):
         model.predict_proba = recorded
         return model
 
-    monkeypatch.setattr(scores_mod, "fit_target", spy)
+    monkeypatch.setattr(agreement_mod, "fit_target", spy)
     return calls
 
 
@@ -72,7 +73,7 @@ def test_agreement_is_spearman_of_difficulty_and_target_oof_loss(tmp_path, monke
     cfg, frame, s = _table(tmp_path, loader, task=task)
     calls = _recorded(monkeypatch)
     ag = agreement(frame, s, cfg)
-    assert ag["rows"] == 300 and len(calls) == cfg.proxy.folds
+    assert ag["rows"] == 300 and len(calls) == cfg.proxy.agreement_folds == ag["folds"]
     keys = _row_index(frame)
     y = frame.y[frame.train]
     rows, losses = [], []
@@ -112,15 +113,20 @@ def test_agreement_fits_a_shorter_target_at_a_raised_rate():
     # proxy.agreement_rounds caps the target's rounds and raises its learning rate by the same factor
     # (a leanset choice: rounds x rate held about constant, common practice, no source)
     from leanset.config import TargetConfig
-    from leanset.scores.dynamics import agreement_target
+    from leanset.scores.target_agreement import agreement_target
 
-    short = agreement_target(TargetConfig(params={"num_boost_round": 300, "learning_rate": 0.05, "num_leaves": 31}), 50)
-    assert short.params == {"num_boost_round": 50, "learning_rate": pytest.approx(0.3), "num_leaves": 31}
+    one = {"num_threads": 1}  # the sample fits run on one thread whatever the target's own setting
+    short = agreement_target(TargetConfig(params={"num_boost_round": 300, "learning_rate": 0.05, "num_leaves": 31,
+                                                  "num_threads": 4}), 50)
+    assert short.params == {"num_boost_round": 50, "learning_rate": pytest.approx(0.3), "num_leaves": 31, **one}
     default = agreement_target(TargetConfig(), 50)  # LightGBM target defaults: 300 rounds at 0.05
-    assert default.params == {"num_boost_round": 50, "learning_rate": pytest.approx(0.3)}
-    assert agreement_target(TargetConfig(params={"n_estimators": 1000, "learning_rate": 0.05}), 50).params["learning_rate"] == 0.5
+    assert default.params == {"num_boost_round": 50, "learning_rate": pytest.approx(0.3), **one}
+    assert agreement_target(TargetConfig(), 10).params["learning_rate"] == 0.5  # 0.05 x 30, capped
+    many = agreement_target(TargetConfig(params={"n_estimators": 1000, "learning_rate": 0.05}), 50).params
+    assert many == {"num_boost_round": 50, "learning_rate": 0.5, **one}
     few = TargetConfig(params={"num_boost_round": 40})
-    assert agreement_target(few, 50) is few and agreement_target(few, None) is few
+    assert agreement_target(few, 50).params == {"num_boost_round": 40, **one}
+    assert agreement_target(few, None).params == {"num_boost_round": 40, **one}
     sk = TargetConfig(family="sklearn", estimator="sklearn.linear_model.LogisticRegression")
     assert agreement_target(sk, 50) is sk
 

@@ -22,6 +22,8 @@ def test_ledger_arithmetic_hand_worked():
     # end to end on one fit (the definition): 10 / (score 4 + select 0.5 + kept fit 3) = 1.333
     assert cost["end_to_end_speedup"] == pytest.approx(4 / 3, abs=1e-3)
     assert cost["saves_time"] is True and cost["target_fits_from"] is None
+    assert cost["agreement_share"] == 0.05  # agreement 0.5 s / full fit 10 s
+    assert "0.50 s = 5.0% of one full-data target fit" in " ".join(t for _, t in ledger_lines(cost))
 
 
 def test_small_or_no_saving_is_said_in_plain_words():

@@ -85,9 +85,11 @@ class ProxyConfig(_Section):
         "`gbdt`: boosting rounds of each threshold-sample pass; when unset, half of `rounds`."))
     agreement_rows: int = Field(2000, ge=0, description=(
         "Proxy–target agreement: rows sampled to cross-fit the target on (0 turns the check off)."))
-    agreement_rounds: int | None = Field(50, ge=2, description=(
-        "Proxy–target agreement: at most this many target boosting rounds on the sample, the learning rate raised "
-        "by the same factor (capped at 0.5); unset keeps the target's own rounds."))
+    agreement_folds: int = Field(2, ge=2, le=20, description=(
+        "Proxy–target agreement: folds of the target's cross-fit within the sample."))
+    agreement_rounds: int | None = Field(10, ge=2, description=(
+        "Proxy–target agreement: at most this many target boosting rounds on the sample, one thread, the learning "
+        "rate raised by the same factor (capped at 0.5); unset keeps the target's own rounds."))
     agreement_floor: float = Field(0.3, ge=-1, le=1, description=(
         "Spearman correlation between proxy difficulty and target loss below which the summary warns (a weak "
         "correlation: common practice, no source)."))

@@ -36,7 +36,8 @@ from .load.rows import RowFrame  # noqa: E402
 from .load.table import load_table  # noqa: E402
 from .preflight import preflight  # noqa: E402
 from .scores.cache import cached_scores  # noqa: E402
-from .scores.dynamics import Scores, agreement, score  # noqa: E402
+from .scores.target_agreement import agreement  # noqa: E402
+from .scores.dynamics import Scores, score  # noqa: E402
 from .select.rules import Selection, select_frame, stabilise  # noqa: E402
 from .store.publish import (CarriedVerdict, ParentRun, VerifyPlan, plan_verification, read_parent,  # noqa: E402
                             store_lock, write_run)

@@ -49,7 +49,7 @@ def cost_ledger(timings: dict[str, float], fits: dict[str, float] | None, fits_f
         ``break_even_fits`` and ``break_even_fits_with_verification`` (None when a fit on the
         kept rows saves nothing); ``end_to_end_speedup`` (full fit / (score + select +
         kept-row fit)); ``saves_time`` (the saving is at least ``SMALL_SAVING`` of the
-        full fit).
+        full fit); ``agreement_share`` (the agreement check's seconds over the full-data fit's).
     """
     stages = {k: float(v) for k, v in timings.items()}
     verification = sum(s for k, s in stages.items() if k in VERIFICATION_STAGES)
@@ -58,7 +58,7 @@ def cost_ledger(timings: dict[str, float], fits: dict[str, float] | None, fits_f
         "stages": stages, "selection_seconds": round(selection, 3), "verification_seconds": round(verification, 3),
         "target_fit_seconds": None, "target_fits_from": fits_from, "saving_per_fit": None, "speedup_per_fit": None,
         "break_even_fits": None, "break_even_fits_with_verification": None, "end_to_end_speedup": None,
-        "saves_time": None,
+        "saves_time": None, "agreement_share": None,
     }
     if not fits:
         return out
@@ -73,6 +73,7 @@ def cost_ledger(timings: dict[str, float], fits: dict[str, float] | None, fits_f
         "break_even_fits_with_verification": _ceil_ratio(selection + verification, saving),
         "end_to_end_speedup": round(full / (core + kept), 3) if core + kept > 0 else None,
         "saves_time": bool(saving >= SMALL_SAVING * full),
+        "agreement_share": round(stages["agreement"] / full, 4) if "agreement" in stages and full > 0 else None,
     })
     return out
 
@@ -84,9 +85,9 @@ def ledger_lines(cost: dict[str, Any]) -> list[tuple[str, str]]:
     check = " · ".join(f"{k} {s:.1f}" for k, s in stages.items() if k in VERIFICATION_STAGES)
     rows = [("leanset cost", f"{cost['selection_seconds']:.1f} s to select ({own})"
              + (f"; {cost['verification_seconds']:.1f} s to verify ({check})" if check else "; verification skipped"))]
-    if stages.get("agreement") and cost.get("target_fit_seconds"):
-        rows.append(("agreement cost", f"{stages['agreement']:.2f} s = "
-                     f"{stages['agreement'] / max(cost['target_fit_seconds']['full'], 1e-9):.1%} of one full-data target fit"))
+    if cost.get("agreement_share") is not None:
+        rows.append(("agreement cost", f"{stages['agreement']:.2f} s = {cost['agreement_share']:.1%} of one full-data "
+                     "target fit"))
     fits = cost.get("target_fit_seconds")
     if not fits:
         return rows

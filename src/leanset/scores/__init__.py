@@ -3,6 +3,7 @@
 The same stage on a Dask cluster is :mod:`leanset.scores.cluster` (needs the ``dask`` extra).
 """
 
-from .dynamics import Scores, agreement, score
+from .target_agreement import agreement
+from .dynamics import Scores, score
 
 __all__ = ["Scores", "agreement", "score"]

@@ -25,7 +25,8 @@ import pyarrow.parquet as pq
 
 from ..config import Config
 from ..load.rows import RowFrame
-from .dynamics import Scores, wants_threshold_samples
+from .dynamics import Scores
+from .labels import wants_threshold_samples
 
 logger = logging.getLogger(__name__)
 

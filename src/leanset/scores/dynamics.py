@@ -19,8 +19,9 @@ p_t = softmax(z_t), y the label, correct_t = [argmax p_t = y]):
 Statistics are accumulated checkpoint by checkpoint in row chunks; no rows x checkpoints array exists.
 
 Also here: the regression analogues (``ResidualDynamics``), repeated cross-fitting with Spearman
-stability, suspected label errors by AUM threshold samples (``threshold_samples``), and the
-proxy-target agreement (``agreement``).
+stability, and the fits of the AUM threshold-sample passes (``threshold_samples``; the procedure
+and its settings are :mod:`leanset.scores.labels`). The proxy–target agreement check is
+:mod:`leanset.scores.target_agreement`.
 """
 
 from __future__ import annotations
@@ -35,13 +36,14 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from ..config import Config, ProxyConfig, SCORE_NAMES, TargetConfig
+from ..config import Config, ProxyConfig, SCORE_NAMES
 from ..difficulty import DIFFICULTY_SIGN
 from ..errors import ConfigError
 from ..models.proxy import FittedProxy, binned_dataset, fit_proxy, n_checkpoints, softmax
 from ..load.memory import release_memory
 from ..load.rows import RowFrame
-from ..models.target import LIGHTGBM_DEFAULTS, LIGHTGBM_ROUNDS, fit_target
+# scores/cluster.py imports these from here too
+from .labels import aum_cutoff, threshold_config, wants_threshold_samples  # noqa: F401
 
 logger = logging.getLogger(__name__)
 
@@ -181,13 +183,6 @@ class ResidualDynamics:
         return out
 
 
-def residual_band(y: np.ndarray, config: ProxyConfig) -> float:
-    """``proxy.residual_band``, or the ``residual_quantile`` of |y − median(y)| (the constant model's residuals)."""
-    if config.residual_band is not None:
-        return float(config.residual_band)
-    return float(np.quantile(np.abs(y - np.median(y)), config.residual_quantile))
-
-
 def _margin_sums(n: int) -> tuple[np.ndarray, Callable]:
     """A zeroed per-row margin sum and the checkpoint callback that adds to it."""
     total = np.zeros(n)
@@ -198,77 +193,12 @@ def _margin_sums(n: int) -> tuple[np.ndarray, Callable]:
     return total, add
 
 
-def threshold_samples(X, y: np.ndarray, n_classes: int, categorical: list[int], config: ProxyConfig,
-                      seed: int) -> tuple[np.ndarray, dict]:
-    """Suspected label errors by the AUM threshold-sample procedure (Pleiss et al., NeurIPS 2020).
+def residual_band(y: np.ndarray, config: ProxyConfig) -> float:
+    """``proxy.residual_band``, or the ``residual_quantile`` of |y − median(y)| (the constant model's residuals)."""
+    if config.residual_band is not None:
+        return float(config.residual_band)
+    return float(np.quantile(np.abs(y - np.median(y)), config.residual_quantile))
 
-    Two extra proxy fits on all rows, with the rounds of :func:`threshold_config`. In each, a
-    seeded random slice of n / (k + 1) rows (the paper's size), at most ``threshold_share`` × n, is
-    relabelled to a fake class k + 1, so those rows are mislabelled by construction; the
-    ``threshold_percentile`` of their AUM is the cut-off. The slices of the two fits are disjoint,
-    so every row is judged in at least one fit as a row with its own label; its gap to the cut-off
-    is averaged over the fits that judged it, and a negative gap marks it suspect.
-
-    Returns
-    -------
-    suspect : ndarray of bool, shape (n,)
-    info : dict
-        The cut-off of each fit and the number of suspects.
-    """
-    config = threshold_config(config)
-    T, rows = n_checkpoints(config), np.arange(len(y))
-
-    def fit_aum(labels: np.ndarray, k: int, fit_seed: int) -> np.ndarray:
-        total, add = _margin_sums(len(y))
-        fit_proxy(X, labels, k, categorical, config, fit_seed, lambda t, z: add(rows, z, labels))
-        return total / T
-    return aum_cutoff(y, n_classes, config, seed, fit_aum)
-
-
-def wants_threshold_samples(config: Config) -> bool:
-    """Whether the AUM threshold-sample passes run: ``proxy.threshold_samples`` true, or ``auto``
-    (the default) when ``selection.drop_suspect_labels`` asks for suspected label errors."""
-    ts = config.proxy.threshold_samples
-    return ts is True or (ts == "auto" and config.selection.drop_suspect_labels)
-
-
-#: The threshold-sample passes grow every tree on all rows unless ``proxy.params`` says otherwise:
-#: with the proxy's per-round bagging their cut-off missed half the flipped labels of breast cancer
-#: at a 20 % flip rate (tests/test_label_errors.py).
-FULL_ROWS = {"bagging_fraction": 1.0, "bagging_freq": 0}
-
-
-def threshold_config(config: ProxyConfig) -> ProxyConfig:
-    """The proxy settings of the threshold-sample passes: ``threshold_rounds`` boosting rounds,
-    by default half of ``rounds`` (the paper reads AUM before the network memorises its noise),
-    every tree grown on all rows (:data:`FULL_ROWS`)."""
-    return config.model_copy(update={"rounds": config.threshold_rounds or max(config.checkpoint_every, config.rounds // 2),
-                                     "params": {**FULL_ROWS, **config.params}})
-
-
-def aum_cutoff(y: np.ndarray, n_classes: int, config: ProxyConfig, seed: int,
-               fit_aum: Callable[[np.ndarray, int, int], np.ndarray]) -> tuple[np.ndarray, dict]:
-    """The threshold-sample procedure of :func:`threshold_samples` around ``fit_aum(labels, k, seed)``,
-    which fits a proxy with ``k`` classes on all rows and returns each row's AUM under ``labels``."""
-    n = len(y)
-    rng = np.random.default_rng([seed, 0xA0C])
-    order = rng.permutation(n)
-    m = max(1, min(n // (n_classes + 1), int(n * config.threshold_share)))
-    gap, judged, cutoffs = np.zeros(n), np.zeros(n, np.int64), []
-    for j in range(2):
-        fake = order[j * m:(j + 1) * m]
-        labels = y.astype(np.int32, copy=True)
-        labels[fake] = n_classes
-        aum = fit_aum(labels, n_classes + 1, int(rng.integers(2**31)))
-        cutoff = float(np.percentile(aum[fake], config.threshold_percentile))
-        real = np.ones(n, bool)
-        real[fake] = False
-        gap[real] += aum[real] - cutoff
-        judged[real] += 1
-        cutoffs.append(cutoff)
-    suspect = gap / np.maximum(judged, 1) < 0
-    return suspect, {"cutoffs": cutoffs, "threshold_rows": int(m), "suspects": int(suspect.sum()),
-                     "percentile": config.threshold_percentile}
 
 
 @dataclass
@@ -287,7 +217,7 @@ class Scores:
         Checkpoints per fold model.
     info : dict
         ``repeats`` and ``stability`` (Spearman between repeats per score), ``label_errors``
-        (threshold-sample cut-offs), and ``agreement`` once :func:`agreement` has run.
+        (threshold-sample cut-offs), and ``agreement`` once :func:`leanset.scores.target_agreement.agreement` has run.
     """
 
     table: pd.DataFrame
@@ -424,58 +354,28 @@ def score(frame: RowFrame, config: Config) -> Scores:
     return Scores(table=table, proxies=proxies, checkpoints=n_checkpoints(pc), info=info)
 
 
-def agreement_target(target: TargetConfig, rounds: int | None) -> TargetConfig:
-    """The LightGBM target as the agreement check fits it: at most ``rounds`` boosting rounds, its
-    learning rate raised by the same factor (at most to 0.5) so the shorter fit goes about as far.
-    A scikit-learn target, or ``rounds`` None, is fitted as configured."""
-    if target.family != "lightgbm" or rounds is None:
-        return target
-    params = dict(target.params)
-    full = int(params.pop("num_boost_round", params.pop("n_estimators", LIGHTGBM_ROUNDS)))
-    if full <= rounds:
-        return target
-    rate = float(params.pop("eta", params.get("learning_rate", LIGHTGBM_DEFAULTS["learning_rate"])))
-    params.update(num_boost_round=rounds, learning_rate=min(0.5, rate * full / rounds))
-    return target.model_copy(update={"params": params})
+def threshold_samples(X, y: np.ndarray, n_classes: int, categorical: list[int], config: ProxyConfig,
+                      seed: int) -> tuple[np.ndarray, dict]:
+    """Suspected label errors by the AUM threshold-sample procedure (Pleiss et al., NeurIPS 2020).
 
-
-def agreement(frame: RowFrame, scores: Scores, config: Config) -> dict | None:
-    """How well the proxy stands in for the target: Spearman correlation between the proxy's
-    difficulty (``selection.score``) and the target model's out-of-fold loss on a seeded sample.
-
-    The target is cross-fitted within the sample (``proxy.folds`` folds drawn afresh per class or
-    label bin), with at most ``proxy.agreement_rounds`` rounds (:func:`agreement_target`); its loss
-    is −log p[y], or the squared error on a regression table. Correlation is
-    ``scipy.stats.spearmanr``; ``None`` when ``proxy.agreement_rows`` is 0.
+    Two extra proxy fits on all rows, with the rounds of :func:`threshold_config`. In each, a
+    seeded random slice of n / (k + 1) rows (the paper's size), at most ``threshold_share`` × n, is
+    relabelled to a fake class k + 1, so those rows are mislabelled by construction; the
+    ``threshold_percentile`` of their AUM is the cut-off. The slices of the two fits are disjoint,
+    so every row is judged in at least one fit as a row with its own label; its gap to the cut-off
+    is averaged over the fits that judged it, and a negative gap marks it suspect.
 
     Returns
     -------
-    dict or None
-        ``score``, ``rows``, ``spearman``, ``floor``, ``below_floor`` and ``seconds``.
+    suspect : ndarray of bool, shape (n,)
+    info : dict
+        The cut-off of each fit and the number of suspects.
     """
-    t0 = time.perf_counter()
-    pc = config.proxy
-    target = agreement_target(config.target, pc.agreement_rounds)
-    train = frame.train
-    m = min(pc.agreement_rows, len(train))
-    if m == 0:
-        return None
-    rng = np.random.default_rng([config.seed, 0xA9E])
-    sample = np.sort(rng.choice(len(train), size=m, replace=False))
-    rows = train[sample]
-    X, y = frame.features(rows), frame.y[rows]
-    fold = _refold(frame.groups[rows], pc.folds, rng)
-    n_classes = len(frame.classes)
-    loss = np.empty(m)
-    for k in range(pc.folds):
-        fit, out = fold != k, fold == k
-        model = fit_target(X[fit], y[fit], None, n_classes, frame.categorical, target, config.seed + k)
-        pred = model.predict_proba(X[out])
-        if n_classes:
-            loss[out] = -np.log(np.clip(pred[np.arange(len(pred)), y[out]], np.finfo(np.float64).eps, 1.0))
-        else:
-            loss[out] = (pred - y[out]) ** 2
-    name = config.selection.score
-    rho = float(stats.spearmanr(scores.difficulty(name)[sample], loss).statistic)
-    return {"score": name, "rows": int(m), "spearman": rho, "floor": pc.agreement_floor,
-            "below_floor": bool(not rho >= pc.agreement_floor), "seconds": round(time.perf_counter() - t0, 3)}
+    config = threshold_config(config)
+    T, rows = n_checkpoints(config), np.arange(len(y))
+
+    def fit_aum(labels: np.ndarray, k: int, fit_seed: int) -> np.ndarray:
+        total, add = _margin_sums(len(y))
+        fit_proxy(X, labels, k, categorical, config, fit_seed, lambda t, z: add(rows, z, labels))
+        return total / T
+    return aum_cutoff(y, n_classes, config, seed, fit_aum)
