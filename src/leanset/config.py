@@ -61,6 +61,10 @@ class ProxyConfig(_Section):
     rounds: int = Field(60, ge=2, description="`gbdt`: boosting rounds of each fold model.")
     checkpoint_every: int = Field(5, ge=1, description=(
         "`gbdt`: boosting rounds between two checkpoints at which the training dynamics are read."))
+    max_trees: int | None = Field(800, ge=2, description=(
+        "`gbdt` with more than two classes (one tree per class a round): when rounds × classes exceeds this, each "
+        "fold model gets max_trees // classes rounds at a learning rate raised by the same factor (at most 0.25); "
+        "unset keeps `rounds` (docs/economics.md)."))
     epochs: int = Field(10, ge=2, description="`linear`: epochs, one checkpoint each.")
     el2n_at: float = Field(0.2, gt=0, le=1, description=(
         "EL2N is read at this share of the checkpoints (early in training, as in the EL2N paper)."))
@@ -168,6 +172,9 @@ class VerifyConfig(_Section):
         "Same-size uniform random subsets trained for the baseline; their spread widens the random interval."))
     bootstrap: int = Field(1000, ge=100, description="Paired bootstrap resamples of the holdout.")
     confidence: float = Field(0.95, gt=0.5, lt=1, description="Level of the bootstrap intervals.")
+    reuse_full_fit: bool = Field(True, description=(
+        "Keep the LightGBM target fitted on all training rows under the store's cache and reuse it in a later run "
+        "whose training rows, target section and seed are unchanged (docs/economics.md)."))
     every: int = Field(1, ge=1, description=(
         "Verify every Nth run of a lineage; the runs between carry the last verdict, marked `carried`."))
     max_new_rows: float | None = Field(0.1, ge=0, le=1, description=(

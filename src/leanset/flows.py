@@ -42,6 +42,7 @@ from .select.rules import Selection, select_frame, stabilise  # noqa: E402
 from .store.publish import (CarriedVerdict, ParentRun, VerifyPlan, plan_verification, read_parent,  # noqa: E402
                             store_lock, write_run)
 from .verify.frontier import FractionEvaluator, choose_fraction, frontier_files, sweep  # noqa: E402
+from .verify.reuse import keep_full_fit, reused_full_fit  # noqa: E402
 from .verify.stats import Verdict, verify  # noqa: E402
 
 logger = logging.getLogger(__name__)
@@ -114,12 +115,18 @@ def select_task(frame: RowFrame, scores: Scores, config: Config) -> Selection:
 
 @task(name="verify", cache_policy=NO_CACHE)
 @_stage("verify")
-def verify_task(frame: RowFrame, selection: Selection, config: Config, evaluator: FractionEvaluator | None) -> Verdict:
-    # the evaluator of a searched fraction already holds the full-data fit and both feature sets
-    verdict = verify(frame, selection, config, None if evaluator is None else evaluator.reference)
+def verify_task(frame: RowFrame, selection: Selection, config: Config,
+                evaluator: FractionEvaluator | None) -> tuple[Verdict, dict]:
+    """The verdict, and whether the full-data fit was reused (``run.json`` ``verification.full_fit``)."""
+    # the evaluator of a searched fraction already holds the full-data fit and both feature sets;
+    # otherwise an earlier run's fit on the same training rows and target is reused when kept
+    reference, reuse = (evaluator.reference, {"reused": False}) if evaluator is not None else reused_full_fit(frame, config)
+    verdict = verify(frame, selection, config, reference)
+    if reference is None:
+        keep_full_fit(frame, config, verdict)
     logger.info("verify: %s, delta %s %+.4f, interval [%+.4f, %+.4f], tolerance %s", verdict.status, verdict.metric,
                 verdict.delta, *verdict.ci, verdict.tolerance)
-    return verdict
+    return verdict, reuse
 
 
 @task(name="plan-verify", cache_policy=NO_CACHE)
@@ -213,7 +220,9 @@ def run_stages(config: Config, stages: SimpleNamespace = TASKS, wait: float = 0.
             plan = (stages.plan(frame, selection, config) if evaluator is None and not auto
                     else VerifyPlan(True, "fraction searched or frontier swept: verified"))
             extra["verification"] = {"verified": plan.verify, "reason": plan.reason}
-            verdict = stages.verify(frame, selection, config, evaluator) if plan.verify else CarriedVerdict(plan)
+            verdict = CarriedVerdict(plan)
+            if plan.verify:
+                verdict, extra["verification"]["full_fit"] = stages.verify(frame, selection, config, evaluator)
             files: dict[str, bytes] = {}
             if frontier:
                 front = stages.frontier(evaluator, config)

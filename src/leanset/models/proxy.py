@@ -239,6 +239,35 @@ def _fit_linear_regression(Z, y, prep, config: ProxyConfig, seed: int, rng, on_c
     return FittedProxy("linear", make_pipeline(prep, sgd), y_shift=shift, y_scale=scale)
 
 
+#: The most :func:`class_rounds` raises the proxy's learning rate to (a leanset choice; common practice,
+#: no source): at 0.3 with 26 classes the scores lost their ranks (docs/economics.md).
+MAX_CLASS_RATE = 0.25
+_RATE_ALIASES = ("learning_rate", "eta", "shrinkage_rate")
+
+
+def class_rounds(config: ProxyConfig, n_classes: int) -> ProxyConfig:
+    """The gbdt proxy settings for a table of ``n_classes`` classes.
+
+    With more than two classes LightGBM grows one tree per class each round, so a fold model
+    costs about ``rounds × n_classes`` trees to grow and to predict. When that exceeds
+    ``config.max_trees`` the rounds are cut to ``max_trees // n_classes`` (never below two
+    checkpoints) and the learning rate is raised by the same factor, at most to
+    :data:`MAX_CLASS_RATE`, so the shorter fit goes about as far; ``checkpoint_every`` is kept.
+    Other tables, the linear proxy and ``max_trees`` None leave the settings as they are.
+    """
+    if config.family != "gbdt" or n_classes <= 2 or config.max_trees is None:
+        return config
+    rounds = max(2 * config.checkpoint_every, config.max_trees // n_classes)
+    if rounds >= config.rounds:
+        return config
+    params = dict(config.params)
+    rate = next((float(params.pop(a)) for a in _RATE_ALIASES if a in params), GBDT_DEFAULTS["learning_rate"])
+    for alias in _RATE_ALIASES:
+        params.pop(alias, None)
+    params["learning_rate"] = max(rate, min(MAX_CLASS_RATE, rate * config.rounds / rounds))
+    return config.model_copy(update={"rounds": rounds, "params": params})
+
+
 def n_checkpoints(config: ProxyConfig) -> int:
     """Checkpoints per fitted proxy."""
     return config.rounds // config.checkpoint_every if config.family == "gbdt" else config.epochs

@@ -46,15 +46,38 @@ class StoredProxy:
         return self.text
 
 
-def score_key(frame: RowFrame, config: Config) -> str:
-    """Hash of everything that decides the score stage's output for ``frame`` under ``config``."""
-    data = config.model_dump(mode="json")
+def library_versions() -> dict[str, str]:
+    """Versions of the libraries whose version can change a score or a fitted model."""
     versions = {}
     for name in _LIBRARIES:
         try:
             versions[name] = metadata.version(name)
         except metadata.PackageNotFoundError:
             versions[name] = "absent"
+    return versions
+
+
+def publish_entry(folder: Path, fill: Callable[[Path], None]) -> None:
+    """Create the cache entry ``folder``: ``fill(tmp)`` writes its files into a folder aside, which is
+    then renamed into place. When another run published the same key first, its entry is kept."""
+    folder.parent.mkdir(parents=True, exist_ok=True)
+    tmp = folder.parent / f".tmp-{folder.name}-{os.getpid()}"
+    shutil.rmtree(tmp, ignore_errors=True)
+    tmp.mkdir()
+    try:
+        fill(tmp)
+        if folder.exists():  # same key, same content
+            shutil.rmtree(tmp)
+            return
+        os.rename(tmp, folder)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+
+
+def score_key(frame: RowFrame, config: Config) -> str:
+    """Hash of everything that decides the score stage's output for ``frame`` under ``config``."""
+    data = config.model_dump(mode="json")
     parts = {
         "fingerprint": frame.fingerprint,
         "fold": hashlib.sha256(frame.fold.tobytes()).hexdigest(),
@@ -64,7 +87,7 @@ def score_key(frame: RowFrame, config: Config) -> str:
         "threshold_samples": wants_threshold_samples(config),
         "execution": {k: v for k, v in data["execution"].items() if k not in ("batch_rows", "feature_memory_mb")},
         "seed": config.seed,
-        "versions": versions,
+        "versions": library_versions(),
     }
     return hashlib.sha256(json.dumps(parts, sort_keys=True).encode()).hexdigest()[:24]
 
@@ -76,11 +99,7 @@ def _json_default(value):
 def write_scores(folder: Path, scores: Scores) -> None:
     """Save ``scores`` as ``folder/scores.parquet`` (its info in the file's metadata) and the fold
     proxies as text, built aside and renamed into place."""
-    folder.parent.mkdir(parents=True, exist_ok=True)
-    tmp = folder.parent / f".tmp-{folder.name}-{os.getpid()}"
-    shutil.rmtree(tmp, ignore_errors=True)
-    tmp.mkdir()
-    try:
+    def fill(tmp: Path) -> None:
         table = pa.Table.from_pandas(scores.table, preserve_index=False)
         meta = {"info": scores.info, "checkpoints": scores.checkpoints, "families": [p.family for p in scores.proxies]}
         table = table.replace_schema_metadata({**(table.schema.metadata or {}),
@@ -88,13 +107,7 @@ def write_scores(folder: Path, scores: Scores) -> None:
         pq.write_table(table, tmp / "scores.parquet")
         for k, proxy in enumerate(scores.proxies):
             (tmp / f"proxy_fold{k}.txt").write_text(proxy.to_text())
-        if folder.exists():  # another run of the same key published first; its scores are the same
-            shutil.rmtree(tmp)
-            return
-        os.rename(tmp, folder)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
+    publish_entry(folder, fill)
 
 
 def read_scores(folder: Path) -> Scores | None:

@@ -51,7 +51,8 @@ import pyarrow.parquet as pq
 
 from ..config import SCORE_NAMES, Config, ExecutionConfig, ProxyConfig
 from ..errors import ConfigError, InputError
-from ..models.proxy import FittedProxy, binary_logits, binned_dataset, fit_proxy, gbdt_params, n_checkpoints, proba_matrix
+from ..models.proxy import (FittedProxy, binary_logits, binned_dataset, class_rounds, fit_proxy, gbdt_params, n_checkpoints,
+                            proba_matrix)
 from .dynamics import (Dynamics, ResidualDynamics, Scores, aum_cutoff, margin, repeat_folds, residual_band, stability,
                        threshold_config, wants_threshold_samples)
 from ..load.rows import RowFrame, encode_columns
@@ -412,6 +413,8 @@ def score(frame: RowFrame, config: Config, client: Client) -> Scores:
 
 
 def _score(frame: RowFrame, config: Config, client: Client) -> Scores:
+    # many classes: the local stage's fewer rounds at a raised rate (models.proxy.class_rounds)
+    config = config.model_copy(update={"proxy": class_rounds(config.proxy, len(frame.classes))})
     pc = config.proxy
     train = frame.train
     y = frame.y[train]

@@ -39,7 +39,7 @@ from scipy import stats
 from ..config import Config, ProxyConfig, SCORE_NAMES
 from ..difficulty import DIFFICULTY_SIGN
 from ..errors import ConfigError
-from ..models.proxy import FittedProxy, binned_dataset, fit_proxy, n_checkpoints, softmax
+from ..models.proxy import FittedProxy, binned_dataset, class_rounds, fit_proxy, n_checkpoints, softmax
 from ..load.memory import release_memory
 from ..load.rows import RowFrame
 # scores/cluster.py imports these from here too
@@ -308,16 +308,18 @@ def score(frame: RowFrame, config: Config) -> Scores:
 
     With ``proxy.repeats`` > 1 the cross-fitting runs again on fresh seeded folds and proxy seeds,
     and every score is the mean over repeats (the EL2N paper averages over initialisations). With
-    ``proxy.threshold_samples`` the AUM threshold-sample passes mark suspected label errors.
+    ``proxy.threshold_samples`` the AUM threshold-sample passes mark suspected label errors. On a
+    table of many classes the gbdt proxy runs fewer rounds at a raised rate (``proxy.max_trees``,
+    :func:`~leanset.models.proxy.class_rounds`).
 
     Returns
     -------
     Scores
     """
-    pc = config.proxy
+    n_classes = len(frame.classes)
+    pc = class_rounds(config.proxy, n_classes)
     train = frame.train
     y = frame.y[train]
-    n_classes = len(frame.classes)
     if pc.family == "linear" and frame.X is None:
         mb = len(frame.y) * len(frame.feature_names) * 4 / 2**20
         raise ConfigError(f"proxy.family: linear needs the {mb:,.0f} MiB feature matrix in memory; "
@@ -328,6 +330,8 @@ def score(frame: RowFrame, config: Config) -> Scores:
                                 config.seed, config.execution.batch_rows)
         release_memory()  # the row groups read while binning
     info: dict = {"repeats": pc.repeats, "stability": None}
+    if pc is not config.proxy:  # many classes: fewer rounds at a raised rate (models.proxy.class_rounds)
+        info["class_rounds"] = {"rounds": pc.rounds, "learning_rate": pc.params["learning_rate"]}
     suspect = pd.array(np.full(len(y), pd.NA), dtype="boolean")
     if wants_threshold_samples(config) and n_classes:  # first, while no per-row statistics are held
         t0 = time.perf_counter()
