@@ -64,7 +64,8 @@ def test_many_classes_get_fewer_rounds_at_a_raised_rate(tmp_path, monkeypatch):
     d["label"] = y
     d.to_parquet(tmp_path / "t.parquet", index=False)
     cfg = Config.model_validate({"input": {"path": str(tmp_path / "t.parquet"), "label": "label"},
-                                 "proxy": {"params": {"num_threads": 1, "min_data_in_leaf": 5}, "agreement_rows": 0}})
+                                 "proxy": {"params": {"num_threads": 1, "min_data_in_leaf": 5}, "agreement_rows": 0,
+                                           "threshold_samples": False}})
     s = score(load_table(cfg), cfg)
     assert s.checkpoints == 6 and s.info["class_rounds"] == {"rounds": 30, "learning_rate": pytest.approx(0.2)}
     assert asked == [(30, pytest.approx(0.2), 26)] * 2
