@@ -56,7 +56,8 @@ def _timeline(cfg, store, api) -> list[tuple[str, float, float]]:
 def test_sigkill_at_twenty_seeded_moments(prefect_api, tmp_path):
     folder = tmp_path / "t"
     part(folder, "a.parquet", 0, 3000, seed=8)
-    cfg = config(tmp_path, folder, input__id="rid")
+    # later runs must take as long as the timed one: no reuse of its full-data fit (verify.reuse_full_fit)
+    cfg = config(tmp_path, folder, input__id="rid", verify__reuse_full_fit=False)
     store, ids = tmp_path / "store", _ids(folder)
     stages = _timeline(cfg, store, prefect_api)
     rng = np.random.default_rng(18)
