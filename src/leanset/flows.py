@@ -41,7 +41,7 @@ from .select.rules import Selection, select_frame, stabilise  # noqa: E402
 from .store.publish import (CarriedVerdict, ParentRun, VerifyPlan, plan_verification, read_parent,  # noqa: E402
                             store_lock, write_run)
 from .verify.frontier import FractionEvaluator, choose_fraction, frontier_files, sweep  # noqa: E402
-from .verify.stats import Verdict, verify  # noqa: E402
+from .verify.verdict import Verdict, verify  # noqa: E402
 
 logger = logging.getLogger(__name__)
 

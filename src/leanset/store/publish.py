@@ -40,7 +40,7 @@ if TYPE_CHECKING:  # the audit commands import this module: keep the model libra
     from ..scores.dynamics import Scores
     from ..select.rules import Selection
     from ..load.rows import RowFrame
-    from ..verify.stats import Verdict
+    from ..verify.verdict import Verdict
 
 PACKAGES = ("leanset", "numpy", "pandas", "pyarrow", "scikit-learn", "lightgbm", "scipy", "prefect", "pydantic")
 
