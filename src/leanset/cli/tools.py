@@ -76,7 +76,7 @@ def bench_make_table_command(
     seed: int = typer.Option(0, help="Seed of the generator."),
 ) -> None:
     """Write an invented classification table as parquet files, chunk by chunk; same seed, same rows."""
-    from ..tools.bench import write_table
+    from ..tools.invented import write_table
 
     try:
         written = write_table(out, rows, features, classes, seed, files)
