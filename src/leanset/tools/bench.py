@@ -28,7 +28,7 @@ from ..errors import ConfigError, LeansetError
 from ..load.table import load_table
 from ..models.proxy import gbdt_params
 from ..scores.dynamics import score
-from ..select.rules import select_frame
+from ..select.frame import select_frame
 from .invented import ensure_table, make_table
 
 
