@@ -114,18 +114,18 @@ class RowFrame:
             out[lo:lo + len(X)] = X
         return out
 
-    def feature_rows(self, rows: np.ndarray):
-        """The float32 features of ``rows`` (ascending positions in table order): an array when ``X``
-        is in memory, else a :class:`RowView` that reads them from disk when used."""
-        return self.X[rows] if self.X is not None else RowView(self, rows)
+    def feature_rows(self, rows: np.ndarray) -> RowView:
+        """The features of ``rows`` (ascending positions in table order) as a :class:`RowView`: no
+        copy is made until it is used, whether ``X`` is in memory or read from disk."""
+        return RowView(self, rows)
 
 
 class RowView:
-    """Rows of a :class:`RowFrame` whose features are not held, read in batches when used.
+    """Rows of a :class:`RowFrame`, gathered or read in batches only when used.
 
     ``view[idx]`` is the view of those of its rows (``idx`` ascending), ``np.asarray(view)``
-    gathers them, and :meth:`batches` streams them, so LightGBM can train on any subset of a
-    table larger than memory through its ``Sequence`` interface.
+    gathers them, and :meth:`batches` streams them, so LightGBM can train on any subset of the
+    table through its ``Sequence`` interface without a gathered copy, in memory or not.
     """
 
     def __init__(self, frame: RowFrame, rows: np.ndarray):
