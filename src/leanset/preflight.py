@@ -17,7 +17,7 @@ import re
 import tempfile
 import warnings
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
@@ -31,7 +31,16 @@ from .load.table import InputSummary, check_input
 _TINY_ROWS = 60
 
 
-def preflight(config: Config, table: pa.Table | None = None) -> InputSummary:
+class Checked(NamedTuple):
+    """What :func:`preflight` returns: the hash of the config it passed (``Config.section_hash``)
+    and what it learned of the table. Handed to a flow, it spares the flow a second check of the
+    same config (:func:`ensure_checked`)."""
+
+    config_hash: str
+    summary: InputSummary
+
+
+def preflight(config: Config, table: pa.Table | None = None) -> Checked:
     """Check the table, the store, the proxy and the target of ``config`` before any fit.
 
     Parameters
@@ -42,8 +51,8 @@ def preflight(config: Config, table: pa.Table | None = None) -> InputSummary:
 
     Returns
     -------
-    InputSummary
-        The task, rows, classes and features of the table.
+    Checked
+        The config's hash and the task, rows, classes and features of the table.
 
     Raises
     ------
@@ -58,7 +67,15 @@ def preflight(config: Config, table: pa.Table | None = None) -> InputSummary:
         from .scores.cluster import check_config
 
         check_config(config)
-    return summary
+    return Checked(config.section_hash(), summary)
+
+
+def ensure_checked(config: Config, checked: Checked | None = None) -> None:
+    """Run :func:`preflight` unless ``checked`` is what it returned for this very config (same
+    hash): the command checks before the flow starts and hands the flow its token, so a run is
+    checked once; a flow started any other way (a deployment, a script) checks for itself."""
+    if checked is None or checked[0] != config.section_hash():
+        preflight(config)
 
 
 def check_settings(config: Config, summary: InputSummary) -> None:
