@@ -23,8 +23,9 @@ import numpy as np
 
 import pyarrow as pa
 
-from .config import Config, ProxyConfig, TargetConfig
+from .config import Config, ProxyConfig, TargetConfig, check_engine
 from .errors import ConfigError, StoreError
+from .load.memory import release_memory
 from .load.table import InputSummary, check_input
 
 #: Rows of the invented dataset the LightGBM parameters are tried on.
@@ -61,12 +62,11 @@ def preflight(config: Config, table: pa.Table | None = None) -> Checked:
         at fault, and the fix.
     """
     summary = check_input(config, table)
-    check_settings(config, summary)
+    release_memory()  # the row groups decoded by the table scan
+    # the checks that need no LightGBM, scikit-learn or Dask first: their refusals come fastest
+    check_engine(config)
     check_store(config.store)
-    if config.execution.engine == "dask":
-        from .scores.cluster import check_config
-
-        check_config(config)
+    check_settings(config, summary)
     return Checked(config.section_hash(), summary)
 
 

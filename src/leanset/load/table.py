@@ -262,7 +262,6 @@ def check_input(config: Config, table: pa.Table | None = None) -> InputSummary:
         for batch in TableSource(dataset, path, None, config.execution.batch_rows).batches(floats):
             _count_infinite(batch, floats, start, counts, first_row)
             start += batch.num_rows
-    release_memory()  # the row groups decoded by the pass
     _refuse_infinite(counts, first_row, path)
     kind = task(table, config)
     n_classes = 0 if kind == "regression" else len(pc.unique(table.column(config.input.label).combine_chunks()))

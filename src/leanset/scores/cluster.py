@@ -44,7 +44,7 @@ import lightgbm as lgb
 import numpy as np
 import pandas as pd
 
-from ..config import SCORE_NAMES, Config, ExecutionConfig, ProxyConfig
+from ..config import SCORE_NAMES, Config, ExecutionConfig, ProxyConfig, check_engine
 from ..errors import ConfigError
 from ..models.proxy import FittedProxy, binary_logits, binned_dataset, fit_proxy, gbdt_params, n_checkpoints, proba_matrix
 from .dynamics import (Dynamics, ResidualDynamics, Scores, aum_cutoff, margin, repeat_folds, residual_band, stability,
@@ -77,20 +77,6 @@ def open_client(execution: ExecutionConfig) -> Iterator[Client]:
         return
     with LocalCluster(**local_cluster_kwargs(execution)) as cluster, Client(cluster, set_as_default=False) as client:
         yield client
-
-
-def check_config(config: Config) -> None:
-    """Refuse what the dask score stage cannot run, before a cluster starts.
-
-    Raises
-    ------
-    ConfigError
-        For the linear proxy or a CSV input.
-    """
-    if config.proxy.family != "gbdt":
-        raise ConfigError("proxy.family linear runs on the local engine only; use gbdt or execution.engine local")
-    if config.input.path.is_file() and config.input.path.suffix.lower() in (".csv", ".tsv", ".txt"):
-        raise ConfigError(f"input.path: {config.input.path} is a CSV file and execution.engine dask reads parquet only; convert it to parquet or use execution.engine local")
 
 
 class _AskedOrder:
@@ -316,9 +302,9 @@ def score(frame: RowFrame, config: Config, client: Client) -> Scores:
     Raises
     ------
     ConfigError
-        For the linear proxy or a CSV input (:func:`check_config`).
+        For the linear proxy or a CSV input (:func:`leanset.config.check_engine`).
     """
-    check_config(config)
+    check_engine(config)
     with client.as_current():  # lightgbm.dask waits on futures through the current client
         return _score(frame, config, client)
 
