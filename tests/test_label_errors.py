@@ -136,6 +136,30 @@ def test_suspects_are_dropped_with_their_reason_and_the_budget_holds():
     assert "drop:suspect_label" not in set(off.reason) and off.keep[suspect].any()
 
 
+def test_auto_drops_suspects_at_small_fractions_and_below_the_limit():
+    # drop_suspect_labels: auto. The 0.5 fraction and the 0.2 suspect_limit are this project's choices, measured
+    # by `leanset bench suite` (common practice, no source): the flipped-label tables flag 7-10 % of rows, the
+    # overlapping-class table 30 %; the pruning-rate dependence follows Zheng et al. (ICLR 2023, hard cut by rate).
+    rng = np.random.default_rng(2)
+    n = 400
+    y, d = rng.integers(0, 3, n), rng.random(n)
+    few, many = np.zeros(n, bool), np.zeros(n, bool)
+    few[:40], many[:120] = True, True  # 10 % and 30 % flagged
+    config = SelectionConfig(fraction=0.3, class_floor=0, strategy="hardest")
+    assert config.drop_suspect_labels == "auto"
+    plain = config.model_copy(update={"drop_suspect_labels": False})
+    dropped = select_rows(d, y, config, 0, suspect=few)
+    assert dropped.info["suspect_dropped"] == 40 and not dropped.keep[few].any()
+    for cfg, flags, because in ((config, many, "overlapping classes"),
+                                (config.model_copy(update={"fraction": 0.7}), few, "fraction above 0.5")):
+        sel = select_rows(d, y, cfg, 0, suspect=flags)
+        np.testing.assert_array_equal(sel.keep, select_rows(d, y, plain.model_copy(update={"fraction": cfg.fraction}), 0, suspect=flags).keep)
+        assert "drop:suspect_label" not in set(sel.reason)
+        assert sel.info["suspects_kept"]["rows"] == flags.sum() and because in sel.info["suspects_kept"]["because"]
+    forced = select_rows(d, y, config.model_copy(update={"drop_suspect_labels": True, "fraction": 0.7}), 0, suspect=many)
+    assert forced.info["suspect_dropped"] == 120 and not forced.keep[many].any()
+
+
 def test_run_writes_suspect_label_and_drops_suspects(tmp_path, prefect_api):
     import json
 

@@ -50,11 +50,6 @@ def test_bench_suite_refuses_an_unknown_table():
     assert result.exit_code == 2 and "nope" in result.output
 
 
-# Open target (issue 13): with today's default selection (balanced quotas, 5 % hard cut, suspects
-# kept) the rule measured 0.8162 against random's mean 0.8167 here; the candidate default in
-# docs/selection.md (proportional quotas, no hard cut, suspects dropped) passes it. strict: it
-# fails loudly once the default is changed and this starts to pass.
-@pytest.mark.xfail(strict=True, reason="default rule 0.0006 below random's mean on flipped digits at 30 % (issue 13 open)")
 def test_default_rule_at_30pct_on_flipped_digits_not_below_random_mean(tmp_path):
     # scikit-learn's bundled digits with 10 % of labels flipped (seeded): the default rule's kept set
     # at 30 % is at or above the mean accuracy of 5 same-size uniform random subsets.

@@ -103,14 +103,14 @@ class SelectionConfig(_Section):
         "draw reweighted by 1/inclusion probability; docs/selection.md)."))
     score: Literal[SCORE_NAMES] = Field("aum", description=(  # type: ignore[valid-type]
         "The score column that ranks difficulty; leanset orients it so that higher means harder."))
-    quotas: Literal["balanced", "proportional"] = Field("balanced", description=(
+    quotas: Literal["balanced", "proportional"] = Field("proportional", description=(
         "Class quotas: `balanced` (water-filling: equal counts, a small class keeps all its rows and what it "
         "leaves goes to the larger ones) or `proportional` (each class keeps its share)."))
     class_floor: int = Field(50, ge=0, description=(
         "Every class keeps at least min(n_c, class_floor) rows; if the floors exceed the budget, the budget grows"
         " and the summary says by how much."))
     strata: int = Field(50, ge=1, description="`stratified`: difficulty bins per class.")
-    hard_cut: float = Field(0.05, ge=0, lt=1, description=(
+    hard_cut: float = Field(0.0, ge=0, lt=1, description=(
         "`stratified`: hardest share of each class set aside first as likely label noise."))
     weights: Literal["class_prior", "none"] = Field("class_prior", description=(
         "`class_prior`: kept rows carry a `weight` so that weighted class shares equal the full table's; `none`: "
@@ -118,9 +118,13 @@ class SelectionConfig(_Section):
     hysteresis: float = Field(0.1, ge=0, le=1, description=(
         "On a store with a run of this lineage: a row keeps its last decision unless its percentile of difficulty"
         " within its class moved by more than this."))
-    drop_suspect_labels: bool = Field(False, description=(
-        "Drop rows whose `suspect_label` is true (`drop:suspect_label`); the budget stays round(fraction × "
-        "training rows)."))
+    drop_suspect_labels: bool | Literal["auto"] = Field("auto", description=(
+        "Drop rows whose `suspect_label` is true (`drop:suspect_label`); the budget stays round(fraction × training"
+        " rows). `auto`: only when the fraction is at most 0.5 and the flagged rows are at most `suspect_limit` of "
+        "the training rows (docs/selection.md)."))
+    suspect_limit: float = Field(0.2, gt=0, le=1, description=(
+        "`drop_suspect_labels: auto`: when more than this share of training rows is flagged, the flags mark "
+        "overlapping classes rather than wrong labels, and no flagged row is dropped (the summary says so)."))
     segment_floor: int = Field(20, ge=0, description=(
         "Every value of every segment column keeps at least min(n_v, segment_floor) rows."))
     dedupe: bool = Field(True, description=(

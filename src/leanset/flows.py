@@ -14,6 +14,9 @@ from __future__ import annotations
 import os
 
 os.environ.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
+# the temporary local API starts in a few seconds on a free machine; Prefect gives it 20 s, which a busy
+# 2-core machine can exceed (measured: a timed-out start at load average 6), so allow more unless set
+os.environ.setdefault("PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS", "120")
 
 import contextlib  # noqa: E402
 import contextvars  # noqa: E402

@@ -34,7 +34,10 @@ def summary(run: dict[str, Any], run_dir: str | Path) -> Table:
     dups = f"; {sel['duplicates_dropped']:,} exact duplicates dropped" if sel.get("duplicates_dropped") else ""
     table.add_row("rows kept", f"{c['kept']:,} of {c['train']:,} train rows ({share:.1%}){floor}{dups}")
     cfg = run["config"]["selection"]
-    table.add_row("selection", f"{cfg['strategy']} on {cfg['score']}, {cfg['quotas']} class quotas")
+    kept = sel.get("suspects_kept")
+    suspects = (f"; {sel['suspect_dropped']:,} suspected label errors dropped" if sel.get("suspect_dropped") else
+                f"; {kept['rows']:,} suspected label errors left eligible ({kept['because']})" if kept else "")
+    table.add_row("selection", f"{cfg['strategy']} on {cfg['score']}, {cfg['quotas']} class quotas{suspects}")
     lo, hi = v["ci"]
     carried = v.get("carried")
     if carried:  # never shown as a fresh verdict: the figures below are the source run's

@@ -227,9 +227,9 @@ def threshold_samples(X, y: np.ndarray, n_classes: int, categorical: list[int], 
 
 def wants_threshold_samples(config: Config) -> bool:
     """Whether the AUM threshold-sample passes run: ``proxy.threshold_samples`` true, or ``auto``
-    (the default) when ``selection.drop_suspect_labels`` asks for suspected label errors."""
+    (the default) when ``selection.drop_suspect_labels`` may drop suspected label errors (true or ``auto``)."""
     ts = config.proxy.threshold_samples
-    return ts is True or (ts == "auto" and config.selection.drop_suspect_labels)
+    return ts is True or (ts == "auto" and config.selection.drop_suspect_labels is not False)
 
 
 #: The threshold-sample passes grow every tree on all rows unless ``proxy.params`` says otherwise:
