@@ -86,6 +86,7 @@ def main() -> None:
     ap.add_argument("--dir", type=Path, default=None, help="folder for the table (kept and reused) and the stores")
     ap.add_argument("--proxy-rounds", type=int, default=None, help="proxy.rounds (default: leanset's)")
     ap.add_argument("--target-rounds", type=int, default=None, help="target num_boost_round (default: leanset's)")
+    ap.add_argument("--target-threads", type=int, default=None, help="target num_threads (default: leanset's)")
     ap.add_argument("--modes", default="memory,streamed")
     ap.add_argument("--by-stage", action="store_true", help="peak RSS stage by stage, stages run as plain functions")
     ap.add_argument("--child", type=Path, default=None, help=argparse.SUPPRESS)
@@ -105,8 +106,9 @@ def main() -> None:
                   "execution": {"feature_memory_mb": 0 if mode == "streamed" else 1e6}}
         if args.proxy_rounds:
             config["proxy"] = {"rounds": args.proxy_rounds, "checkpoint_every": min(5, args.proxy_rounds)}
-        if args.target_rounds:
-            config["target"] = {"params": {"num_boost_round": args.target_rounds}}
+        target = {"num_boost_round": args.target_rounds, "num_threads": args.target_threads}
+        if any(target.values()):
+            config["target"] = {"params": {k: v for k, v in target.items() if v}}
         path = root / f"{mode}.yaml"
         path.write_text(yaml.safe_dump(config))
         t0 = time.perf_counter()

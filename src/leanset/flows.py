@@ -224,6 +224,9 @@ def run_stages(config: Config, stages: SimpleNamespace = TASKS, wait: float = 0.
                 front = stages.frontier(evaluator, config)
                 extra["frontier"] = front.to_dict(orient="records")
                 files = frontier_files(front, config.verify.metric)
+            evaluator = None
+            frame.release_features()  # every model is trained; the write stage reads no features
+            release_memory()
             return stages.write(frame, scores, selection, verdict, config, parent, extra, files)
     finally:
         _TIMINGS.reset(token)

@@ -77,6 +77,15 @@ class RowFrame:
         """Indices of the training rows (those that may be pruned)."""
         return np.flatnonzero(~self.holdout)
 
+    def release_features(self) -> None:
+        """Let go of the feature matrix held in memory (``X`` becomes None): from then on features
+        are read from the table in batches, as when the matrix did not fit. The run calls it once
+        the last model is trained, so the write stage does not hold the matrix as well.
+
+        The frame is otherwise frozen; this is the one field that may change, and only to None.
+        """
+        object.__setattr__(self, "X", None)
+
     def encode(self, batch: pa.Table | pa.RecordBatch) -> np.ndarray:
         """The float32 feature matrix of a batch of original columns, with this run's category codes."""
         k = len(self.feature_names) - len(self.categorical)
