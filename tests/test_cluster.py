@@ -24,7 +24,7 @@ from leanset.config import ExecutionConfig, load_config
 from leanset.errors import ConfigError, InputError
 from leanset.models.proxy import n_checkpoints
 from leanset.scores.dynamics import residual_band
-from leanset.select.rules import select_frame
+from leanset.select.frame import select_frame
 from leanset.store.publish import check_conservation
 from leanset.load.table import load_table
 from store_helpers import assert_conserved, manifest, run_json, run_ok

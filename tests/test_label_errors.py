@@ -19,7 +19,7 @@ import leanset.scores.dynamics as scores_mod
 from leanset.config import Config, SelectionConfig
 from leanset.tools.datasets import flipped_table
 from leanset.scores.dynamics import score
-from leanset.select.rules import select_rows
+from leanset.select.suspects import drops_suspects, select_rows
 from leanset.load.table import load_table
 
 DATASETS = ("digits", "wine", "breast_cancer")
@@ -156,6 +156,7 @@ def test_auto_drops_suspects_at_small_fractions_and_below_the_limit():
         np.testing.assert_array_equal(sel.keep, select_rows(d, y, plain.model_copy(update={"fraction": cfg.fraction}), 0, suspect=flags).keep)
         assert "drop:suspect_label" not in set(sel.reason)
         assert sel.info["suspects_kept"]["rows"] == flags.sum() and because in sel.info["suspects_kept"]["because"]
+        assert drops_suspects(cfg, flags) == (False, sel.info["suspects_kept"]["because"])
     forced = select_rows(d, y, config.model_copy(update={"drop_suspect_labels": True, "fraction": 0.7}), 0, suspect=many)
     assert forced.info["suspect_dropped"] == 120 and not forced.keep[many].any()
 

@@ -22,7 +22,8 @@ from sklearn.datasets import load_digits, load_wine
 from leanset.config import SelectionConfig, TargetConfig, load_config
 from leanset.difficulty import class_percentile
 from leanset.scores.dynamics import score
-from leanset.select.rules import REASONS, class_quotas, select, stabilise
+from leanset.select.rules import REASONS, class_quotas, select
+from leanset.select.stable import stabilise
 from leanset.load.table import load_table
 from leanset.models.target import fit_target
 from leanset.verify.stats import metric_value
@@ -392,7 +393,7 @@ def test_select_frame_ranks_by_the_given_selections_score():
     from types import SimpleNamespace
 
     from leanset.config import Config
-    from leanset.select.rules import select_frame
+    from leanset.select.frame import select_frame
 
     n = 200
     frame = SimpleNamespace(train=np.arange(n), groups=np.zeros(n, np.int32), segments=None,

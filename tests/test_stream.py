@@ -19,7 +19,7 @@ from sklearn.datasets import load_digits
 
 from leanset.config import Config
 from leanset.scores.dynamics import score
-from leanset.select.rules import select_frame
+from leanset.select.frame import select_frame
 from leanset.load import RowView, load_table
 from leanset.verify.stats import verify
 
@@ -107,7 +107,7 @@ import json, sys
 from pathlib import Path
 from leanset.config import Config
 from leanset.scores.dynamics import score
-from leanset.select.rules import select_frame
+from leanset.select.frame import select_frame
 from leanset.load.table import load_table
 from leanset.verify.stats import verify
 cfg = Config.model_validate(json.loads(sys.argv[1]))

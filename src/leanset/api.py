@@ -171,7 +171,7 @@ class RowPruner(BaseEstimator):
         """
         from .load.table import load_table
         from .scores.dynamics import score
-        from .select.rules import select_frame
+        from .select.frame import select_frame
 
         if y is None:
             raise PrunerInputError("RowPruner requires y to be passed, but the target y is None")

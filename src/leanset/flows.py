@@ -41,7 +41,7 @@ from .load.table import load_table  # noqa: E402
 from .preflight import Checked, ensure_checked  # noqa: E402
 from .scores.cache import cached_scores  # noqa: E402
 from .scores.dynamics import Scores, agreement, score  # noqa: E402
-from .select.rules import Selection, select_frame, stabilise  # noqa: E402
+from .select import Selection, select_frame, stabilise  # noqa: E402
 from .store.publish import (CarriedVerdict, ParentRun, VerifyPlan, plan_verification, read_parent,  # noqa: E402
                             store_lock, write_run)
 from .verify.frontier import FractionEvaluator, choose_fraction, frontier_files, sweep  # noqa: E402

@@ -54,3 +54,16 @@ def split_rows(row_id: np.ndarray, y: np.ndarray, fraction: float, folds: int, s
     fold = ((rank - n_hold[y]) % folds).astype(np.int8)
     fold[holdout] = -1
     return holdout, fold
+
+
+def validation_split(groups: np.ndarray, fraction: float, seed: int) -> tuple[np.ndarray, np.ndarray]:
+    """A seeded split of the training rows, stratified by ``groups``: (fit rows, validation rows),
+    positions in ascending order. Each group gives ``round(fraction * n_g)`` rows to validation,
+    at least one when it has two or more."""
+    rng = np.random.default_rng([seed, 0x7A1D])
+    slice_ = np.zeros(len(groups), bool)
+    for g in np.unique(groups):
+        rows = np.flatnonzero(groups == g)
+        take = min(len(rows) - 1, max(1, int(round(fraction * len(rows))))) if len(rows) > 1 else 0
+        slice_[rng.choice(rows, size=take, replace=False)] = True
+    return np.flatnonzero(~slice_), np.flatnonzero(slice_)

@@ -1,5 +1,7 @@
 """Select stage: class and segment quotas, duplicates, strategies, reason codes, weights, stable decisions."""
 
-from .rules import Selection, select, select_frame, stabilise
+from .frame import select_frame
+from .rules import Selection, select
+from .stable import stabilise
 
 __all__ = ["Selection", "select", "select_frame", "stabilise"]

@@ -28,17 +28,14 @@ the same share of its size; both respect ``min(n_c, class_floor)`` and ``n_c``.
 
 from __future__ import annotations
 
-import logging
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 
-from ..config import Config, SelectionConfig
-from ..difficulty import class_percentile
+from ..config import SelectionConfig
 from ..reasons import REASONS  # noqa: F401  (the codes this stage writes; defined below the stages for the reports)
 
-logger = logging.getLogger(__name__)
 _KEEP_REASON = {"stratified": "keep:stratum", "hardest": "keep:hard", "easiest": "keep:easy", "random": "keep:random",
                 "importance": "keep:sampled"}
 
@@ -343,163 +340,3 @@ def select(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, seed:
     return Selection(keep=keep, reason=reason, stratum=stratum, weight=weight,
                      dup_count=dup_count, conflict=conflict, info=info)
 
-
-#: What a row dropped as a suspected label error holds in each per-row field of a Selection.
-_SUSPECT_FILL = {"keep": False, "reason": "drop:suspect_label", "stratum": -1, "weight": 0.0, "dup_count": 1, "conflict": False}
-
-
-#: ``drop_suspect_labels: auto`` drops suspects only up to this kept fraction. When most rows are kept, a kept
-#: set that holds the table's label noise stays calibrated to labels like the holdout's; dropping the suspects
-#: then made the kept model over-confident (log loss above random's interval on the suite's noisy table). After
-#: the coverage-centric paper (Zheng et al., ICLR 2023), which sets its hard cut by pruning rate; the value is
-#: this project's choice, measured by ``leanset bench suite`` (docs/selection.md).
-SUSPECT_DROP_UP_TO = 0.5
-
-
-def drops_suspects(config: SelectionConfig, suspect: np.ndarray | None) -> tuple[bool, str]:
-    """Whether the suspected label errors are dropped under ``config``, and why not when they are not
-    (``""`` when they are, or when there is nothing to drop)."""
-    if suspect is None or config.drop_suspect_labels is False or not suspect.any():
-        return False, ""
-    if config.drop_suspect_labels is True:
-        return True, ""
-    if config.fraction > SUSPECT_DROP_UP_TO:
-        return False, f"fraction above {SUSPECT_DROP_UP_TO}"
-    if suspect.mean() > config.suspect_limit:
-        return False, f"{suspect.mean():.1%} flagged, above suspect_limit {config.suspect_limit}: overlapping classes"
-    return True, ""
-
-
-def select_rows(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, seed: int,
-                suspect: np.ndarray | None = None, **per_row) -> Selection:
-    """:func:`select`, after setting aside suspected label errors when :func:`drops_suspects` says so.
-
-    Suspects are dropped with ``drop:suspect_label``; the others are selected with the fraction
-    raised so the budget stays ``round(fraction * n)`` of all ``n`` rows. ``per_row`` holds the
-    optional per-row arguments of :func:`select` (``segments``, ``X``). When ``auto`` keeps the
-    suspects eligible, ``info["suspects_kept"]`` says why.
-
-    Parameters
-    ----------
-    suspect : ndarray of bool, shape (n,), optional
-        ``suspect_label`` of each row (``Scores.table``).
-    """
-    drop, why_not = drops_suspects(config, suspect)
-    if not drop:
-        sub = select(difficulty, y, config, seed, **per_row)
-        if why_not:
-            sub.info["suspects_kept"] = {"rows": int(suspect.sum()), "because": why_not}
-        return sub
-    ok = ~suspect
-    n = len(y)
-    fraction = min(1.0, config.fraction * n / max(int(ok.sum()), 1))
-    sub = select(difficulty[ok], y[ok], config.model_copy(update={"fraction": fraction}), seed,
-                 **{k: None if v is None else v[ok] for k, v in per_row.items()})
-    fields = {}
-    for name, value in vars(sub).items():
-        if isinstance(value, np.ndarray) and len(value) == int(ok.sum()):
-            full = np.full(n, _SUSPECT_FILL[name], dtype=value.dtype)
-            full[ok] = value
-            fields[name] = full
-        else:
-            fields[name] = value
-    fields["info"] = {**sub.info, "suspect_dropped": int(suspect.sum())}
-    return Selection(**fields)
-
-
-def select_frame(frame, scores, config: Config, selection: SelectionConfig | None = None,
-                 rows: np.ndarray | None = None) -> Selection:
-    """The select stage on a loaded ``RowFrame`` and its ``Scores``: difficulty by ``selection.score``,
-    quotas over classes (label bins on a regression table) and segments, duplicates by feature
-    hash, suspected label errors; ``selection`` replaces ``config.selection`` when given.
-    ``rows`` (positions among the training rows) restricts the selection to those rows."""
-    train, selection = frame.train, selection or config.selection
-    logger.info("select: %s on %s, fraction %s of %d training rows", selection.strategy, selection.score, selection.fraction, len(train))
-    rows = np.arange(len(train)) if rows is None else rows
-    train = train[rows]
-    suspect = scores.suspects()
-    return select_rows(scores.difficulty(selection.score)[rows], frame.groups[train], selection, config.seed,
-                       suspect=None if suspect is None else suspect[rows], segments=None if frame.segments is None else frame.segments[train],
-                       X=frame.feature_hash[train])
-
-
-# --- Stable decisions over a growing table -------------------------------------------------
-
-
-def stabilise(fresh: Selection, difficulty: np.ndarray, y: np.ndarray, previous: np.ndarray,
-              previous_pct: np.ndarray, hysteresis: float, seed: int) -> Selection:
-    """Keep a parent run's decisions where a row's difficulty barely moved.
-
-    A training row that the parent run kept (dropped) stays kept (dropped) while its percentile
-    of difficulty within its class moved by at most ``hysteresis``. Each class keeps exactly as
-    many rows as ``fresh`` does, so quotas and weights are unchanged; the rows still needed are
-    taken from the rows ``fresh`` keeps, new rows first, then rows whose score moved, then rows
-    the parent dropped. When the stable rows alone exceed the quota, those ``fresh`` would drop
-    go first.
-
-    Parameters
-    ----------
-    fresh : Selection
-        The selection of this run without regard to the parent (from :func:`select`).
-    difficulty : ndarray of float, shape (n,)
-    y : ndarray of int, shape (n,)
-    previous : ndarray of int8, shape (n,)
-        1 where the parent run kept the row, 0 where it dropped it, -1 for a row new to this
-        run or in the parent's holdout.
-    previous_pct : ndarray of float, shape (n,)
-        The row's percentile of difficulty within its class in the parent run (NaN where
-        ``previous`` is -1).
-    hysteresis : float
-        The band, in percentile units (0.1 = ten percentiles).
-    seed : int
-
-    Returns
-    -------
-    Selection
-        ``info["stable"]`` counts the rows kept and dropped as before, the rows whose score
-        moved, and the new rows.
-    """
-    n = len(y)
-    rng = np.random.default_rng([seed, 0x57AB1E])
-    old = previous >= 0
-    moved = old & ~(np.abs(class_percentile(difficulty, y) - previous_pct) <= hysteresis)
-    # rows a filter drops (duplicates, suspected label errors) are never kept for stability
-    eligible = fresh.keep | np.isin(fresh.reason, ("drop:over_budget", "drop:hard_cut"))
-    sticky_keep = old & ~moved & (previous == 1) & eligible
-    sticky_drop = old & ~moved & (previous == 0)
-    fk = fresh.keep
-    keep = np.zeros(n, bool)
-    for c in np.unique(y):
-        rows = np.flatnonzero(y == c)
-        quota = int(fk[rows].sum())
-        tie = rng.random(len(rows))
-        chosen = rows[sticky_keep[rows]]
-        if len(chosen) > quota:
-            # fresh-dropped rows leave first (False sorts before True), ties at random
-            local = np.flatnonzero(sticky_keep[rows])
-            order = np.lexsort((tie[local], ~fk[rows][local]))
-            chosen = rows[local[order[:quota]]]
-        else:
-            local = np.flatnonzero(fk[rows] & ~sticky_keep[rows])
-            tier = np.where(~old[rows][local], 0, np.where(moved[rows][local], 1, 2))
-            order = np.lexsort((tie[local], tier))
-            chosen = np.concatenate((chosen, rows[local[order[: quota - len(chosen)]]]))
-        keep[chosen] = True
-
-    reason = fresh.reason.copy()
-    reason[keep & ~fk] = "keep:stable"
-    reason[~keep & fk] = "drop:over_budget"
-    reason[~keep & fk & sticky_drop] = "drop:stable"
-    weight = np.zeros(n)
-    weight[keep & fk] = fresh.weight[keep & fk]
-    for c in np.unique(y[keep & ~fk]):
-        in_c = y == c
-        weight[keep & ~fk & in_c] = fresh.weight[fk & in_c].mean()
-    info = {**fresh.info, "kept": int(keep.sum()), "stable": {
-        "hysteresis": hysteresis,
-        "kept_as_before": int((keep & sticky_keep).sum()),
-        "dropped_as_before": int((~keep & sticky_drop).sum()),
-        "moved": int(moved.sum()),
-        "new": int((~old).sum()),
-    }}
-    return replace(fresh, keep=keep, reason=reason, weight=weight, info=info)

@@ -106,7 +106,7 @@ def lineage(config: Config) -> str:
     the runs of one lineage form one history.
 
     The fraction is left out so that a run whose fraction was searched (``auto``) or changed
-    still links to its parent; its quotas change and :func:`leanset.select.rules.stabilise` follows them.
+    still links to its parent; its quotas change and :func:`leanset.select.stable.stabilise` follows them.
     ``execution.batch_rows`` and ``feature_memory_mb`` change no decision (``tests/test_stream.py``).
     """
     data = config.model_dump(mode="json")

@@ -34,7 +34,7 @@ from ..config import Config, ExecutionConfig
 from ..errors import ConfigError, LeansetError
 from ..models.proxy import gbdt_params
 from ..scores.dynamics import score
-from ..select.rules import select_frame
+from ..select.frame import select_frame
 from ..load.rows import RowFrame
 from ..load.split import split_rows
 from ..load.table import TableSource, load_table

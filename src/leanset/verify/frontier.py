@@ -16,26 +16,14 @@ import pyarrow.parquet as pq
 
 from ..config import Config
 from ..scores.dynamics import Scores
-from ..select.rules import select_frame
+from ..select.frame import select_frame
 from ..load.rows import RowFrame
+from ..load.split import validation_split
 from ..models.target import fit_timed
 from .stats import Reference, calibration, calibration_interval, compare, metric_interval, metric_value
 
 DEFAULT_GRID = (0.05, 0.1, 0.2, 0.3, 0.5, 0.7)
 STRATEGIES = ("stratified", "hardest", "easiest", "random")
-
-
-def validation_split(groups: np.ndarray, fraction: float, seed: int) -> tuple[np.ndarray, np.ndarray]:
-    """A seeded split of the training rows, stratified by ``groups``: (fit rows, validation rows),
-    positions in ascending order. Each group gives ``round(fraction * n_g)`` rows to validation,
-    at least one when it has two or more."""
-    rng = np.random.default_rng([seed, 0x7A1D])
-    slice_ = np.zeros(len(groups), bool)
-    for g in np.unique(groups):
-        rows = np.flatnonzero(groups == g)
-        take = min(len(rows) - 1, max(1, int(round(fraction * len(rows))))) if len(rows) > 1 else 0
-        slice_[rng.choice(rows, size=take, replace=False)] = True
-    return np.flatnonzero(~slice_), np.flatnonzero(slice_)
 
 
 class FractionEvaluator:
