@@ -27,7 +27,7 @@ from pathlib import Path
 
 import yaml
 
-from leanset.tools.bench import write_table
+from leanset.tools.invented import write_table
 
 BOUND_EXTRA_MB = 0.6 * 1024
 

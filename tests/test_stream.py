@@ -21,7 +21,7 @@ from leanset.config import Config
 from leanset.scores.dynamics import score
 from leanset.select.frame import select_frame
 from leanset.load import RowView, load_table
-from leanset.verify.stats import verify
+from leanset.verify.verdict import verify
 
 
 def _digits_folder(tmp_path: Path) -> Path:
@@ -109,7 +109,7 @@ from leanset.config import Config
 from leanset.scores.dynamics import score
 from leanset.select.frame import select_frame
 from leanset.load.table import load_table
-from leanset.verify.stats import verify
+from leanset.verify.verdict import verify
 cfg = Config.model_validate(json.loads(sys.argv[1]))
 frame = load_table(cfg)
 scores = score(frame, cfg)

@@ -42,10 +42,10 @@ from .preflight import Checked, ensure_checked  # noqa: E402
 from .scores.cache import cached_scores  # noqa: E402
 from .scores.dynamics import Scores, agreement, score  # noqa: E402
 from .select import Selection, select_frame, stabilise  # noqa: E402
-from .store.publish import (CarriedVerdict, ParentRun, VerifyPlan, plan_verification, read_parent,  # noqa: E402
-                            store_lock, write_run)
+from .store.lineage import CarriedVerdict, ParentRun, VerifyPlan, plan_verification, read_parent  # noqa: E402
+from .store.publish import store_lock, write_run  # noqa: E402
 from .verify.frontier import FractionEvaluator, choose_fraction, frontier_files, sweep  # noqa: E402
-from .verify.stats import Verdict, verify  # noqa: E402
+from .verify.verdict import Verdict, verify  # noqa: E402
 
 logger = logging.getLogger(__name__)
 
