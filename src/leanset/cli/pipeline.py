@@ -83,7 +83,7 @@ def _launch(config: Path, overrides: dict, wait: float, verbose: bool, frontier:
 
     try:
         cfg = load_config(config, overrides)
-        preflight(cfg)
+        checked = preflight(cfg)  # the flow is handed the token and does not check again
     except LeansetError as exc:
         fail(exc)
     if verbose:
@@ -100,7 +100,7 @@ def _launch(config: Path, overrides: dict, wait: float, verbose: bool, frontier:
     from ..report.summary import frontier_table, read_run, summary
 
     with _progress(enabled=not verbose):
-        state = (frontier_flow if frontier else prune_flow)(cfg, None, wait, use_cache, return_state=True)
+        state = (frontier_flow if frontier else prune_flow)(cfg, None, wait, use_cache, checked, return_state=True)
     # a fail verdict ends the flow run Failed, holding the run directory; an exception is raised again here
     run_dir = state.result(raise_on_failure=False)
     if isinstance(run_dir, LeansetError):
