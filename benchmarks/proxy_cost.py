@@ -20,7 +20,8 @@ import time
 import numpy as np
 from scipy import stats
 
-from leanset.tools.bench import machine, make_table
+from leanset.tools.bench import machine
+from leanset.tools.invented import make_table
 from leanset.config import SCORE_NAMES, Config, TargetConfig
 from leanset.scores.dynamics import _refold, score
 from leanset.models.target import fit_target

@@ -12,6 +12,7 @@ import pytest
 from typer.testing import CliRunner
 
 import leanset.tools.bench as bench
+import leanset.tools.invented as invented
 from leanset.cli import app
 from leanset.errors import ConfigError
 
@@ -33,7 +34,7 @@ def _make(folder, *args):
 
 def test_make_table_same_seed_same_rows_whatever_the_files(tmp_path, monkeypatch):
     """Same seed, same data for 2 or 3 files; file cuts fall inside generator chunks; columns and dtypes as documented."""
-    monkeypatch.setattr(bench, "CHUNK_ROWS", 700)  # several chunks, cut by the files at other places
+    monkeypatch.setattr(invented, "CHUNK_ROWS", 700)  # several chunks, cut by the files at other places
     result = _make(tmp_path / "two", "--rows", "2000", "--features", "4", "--classes", "3", "--files", "2", "--seed", "7")
     assert re.search(r"wrote 2,000 rows x 4 features, 3 classes to .*: 2 parquet files, [\d.]+ MiB in [\d.]+ s", result.output)
     _make(tmp_path / "three", "--rows", "2000", "--features", "4", "--classes", "3", "--files", "3", "--seed", "7")
@@ -51,9 +52,9 @@ def test_make_table_same_seed_same_rows_whatever_the_files(tmp_path, monkeypatch
     assert set(np.unique(y2)) == {0, 1, 2}
     assert not np.array_equal(X2, _read(tmp_path / "other")[0])
 
-    frame = bench.make_table(2000, 4, 3, seed=7)  # the in-memory table of `bench score`: the same rows
+    frame = invented.make_table(2000, 4, 3, seed=7)  # the in-memory table of `bench score`: the same rows
     assert np.array_equal(frame.X, X2) and np.array_equal(frame.y, y2)
-    shorter = bench.make_table(1500, 4, 3, seed=7)  # a smaller table is the first rows of a larger one
+    shorter = invented.make_table(1500, 4, 3, seed=7)  # a smaller table is the first rows of a larger one
     assert np.array_equal(shorter.X, X2[:1500]) and np.array_equal(shorter.y, y2[:1500])
 
 
@@ -117,9 +118,9 @@ def test_scale_report_and_table_reuse(tmp_path):
     assert re.fullmatch(r"time_exponent=-?\d+\.\d{3}", lines[-1])
 
     made = tmp_path / "rows-2000-f5-c3-seed0"
-    assert bench.ensure_table(made, 2000, 5, 3, seed=0) is None  # there already: reused
+    assert invented.ensure_table(made, 2000, 5, 3, seed=0) is None  # there already: reused
     with pytest.raises(ConfigError, match="remove it or pass another --dir"):  # another shape: refused, not overwritten
-        bench.ensure_table(made, 2000, 6, 3, seed=0)
+        invented.ensure_table(made, 2000, 6, 3, seed=0)
 
 
 def test_time_exponent_is_the_log_log_slope():

@@ -15,7 +15,8 @@ from sklearn.linear_model import LogisticRegression
 from sklearn.model_selection import cross_val_predict, train_test_split
 
 from leanset.config import TargetConfig, VerifyConfig
-from leanset.verify.stats import _resamples, calibration, calibration_excess, calibration_interval, row_calibration, verify_rows
+from leanset.verify.stats import _resamples, calibration, calibration_excess, calibration_interval, row_calibration
+from leanset.verify.verdict import verify_rows
 
 LGBM = TargetConfig(params={"num_boost_round": 50, "num_threads": 1})
 

@@ -4,7 +4,7 @@
 import numpy as np
 from scipy import stats
 
-from leanset.tools.bench import table_chunks
+from leanset.tools.invented import table_chunks
 from leanset.tools.economics import INFORMATIVE, economics_chunks, economics_lines
 
 

@@ -12,7 +12,9 @@ import pandas as pd
 import pyarrow.parquet as pq
 import pytest
 
-from leanset.report.html import OKABE_ITO, SECTIONS, render_html, seconds, share
+from leanset.report.charts import OKABE_ITO
+from leanset.report.format import seconds, share
+from leanset.report.html import SECTIONS, render_html
 from store_helpers import cli, config, part, published, run_ok
 
 

@@ -11,7 +11,7 @@ import pandas as pd
 import pytest
 from sklearn.datasets import load_breast_cancer
 
-import leanset.verify.stats as stats_mod
+import leanset.verify.verdict as stats_mod
 from leanset.api import prune
 
 ONE_THREAD = {"num_threads": 1}

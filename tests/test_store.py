@@ -247,7 +247,7 @@ def test_batch_and_memory_settings_leave_the_lineage_but_the_engine_does_not():
     # batch size and streaming change no decision (tests/test_stream.py), so a run that only changes
     # them keeps its history; the dask engine trains other proxies, so it starts its own lineage
     from leanset.config import Config
-    from leanset.store.publish import lineage
+    from leanset.store.lineage import lineage
 
     base = {"input": {"path": "t.parquet", "label": "y"}}
     one = Config.model_validate(base)

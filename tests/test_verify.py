@@ -25,9 +25,8 @@ from leanset.config import SelectionConfig, TargetConfig, VerifyConfig
 from leanset.errors import ConfigError
 from leanset.select.rules import select
 from leanset.models.target import FittedTarget, fit_target
-from leanset.verify.stats import (
-    mcnemar_exact, metric_value, paired_bootstrap, recall_drop, resampled_metric, verify_rows,
-)
+from leanset.verify.stats import mcnemar_exact, metric_value, paired_bootstrap, recall_drop, resampled_metric
+from leanset.verify.verdict import verify_rows
 
 # The module whose ``fit_target`` every fit of ``verify_rows`` goes through, for monkeypatching.
 target_mod = importlib.import_module("leanset.models.target")

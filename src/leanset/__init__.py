@@ -13,7 +13,7 @@ from .errors import ConfigError, InputError, LeansetError, StoreError
 _LAZY = {
     "Config": "config", "load_config": "config", "Scores": "scores.dynamics", "score": "scores.dynamics",
     "Selection": "select.rules", "write_run": "store.publish", "RowFrame": "load.rows", "load_table": "load.table",
-    "Verdict": "verify.stats",
+    "Verdict": "verify.verdict",
     "RowPruner": "api", "prune": "api", "PruneResult": "api",
 }
 

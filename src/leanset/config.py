@@ -297,3 +297,19 @@ def parse_config(raw: dict[str, Any], overrides: dict[str, Any] | None = None, s
         return Config.model_validate(raw)
     except ValidationError as err:
         raise _first_error(err, source) from None
+
+
+def check_engine(config: Config) -> None:
+    """Refuse what ``execution.engine: dask`` cannot run, before a cluster starts (and without
+    importing Dask): the linear proxy, or a CSV input.
+
+    Raises
+    ------
+    ConfigError
+    """
+    if config.execution.engine != "dask":
+        return
+    if config.proxy.family != "gbdt":
+        raise ConfigError("proxy.family linear runs on the local engine only; use gbdt or execution.engine local")
+    if config.input.path.is_file() and config.input.path.suffix.lower() in (".csv", ".tsv", ".txt"):
+        raise ConfigError(f"input.path: {config.input.path} is a CSV file and execution.engine dask reads parquet only; convert it to parquet or use execution.engine local")

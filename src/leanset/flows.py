@@ -35,18 +35,19 @@ from prefect.context import FlowRunContext  # noqa: E402
 from prefect.states import Completed, Failed, State  # noqa: E402
 
 from .config import Config, load_config  # noqa: E402
+from .load.memory import release_memory  # noqa: E402
 from .load.rows import RowFrame  # noqa: E402
 from .load.table import load_table  # noqa: E402
-from .preflight import preflight  # noqa: E402
+from .preflight import Checked, ensure_checked  # noqa: E402
 from .scores.cache import cached_scores  # noqa: E402
 from .scores.target_agreement import agreement  # noqa: E402
 from .scores.dynamics import Scores, score  # noqa: E402
 from .select import Selection, select_frame, stabilise  # noqa: E402
-from .store.publish import (CarriedVerdict, ParentRun, VerifyPlan, plan_verification, read_parent,  # noqa: E402
-                            store_lock, write_run)
+from .store.lineage import CarriedVerdict, ParentRun, VerifyPlan, plan_verification, read_parent  # noqa: E402
+from .store.publish import store_lock, write_run  # noqa: E402
 from .verify.frontier import FractionEvaluator, choose_fraction, frontier_files, sweep  # noqa: E402
 from .verify.reuse import keep_full_fit, reused_full_fit  # noqa: E402
-from .verify.stats import Verdict, verify  # noqa: E402
+from .verify.verdict import Verdict, verify  # noqa: E402
 
 logger = logging.getLogger(__name__)
 
@@ -58,7 +59,8 @@ _TIMINGS: contextvars.ContextVar[dict[str, float]] = contextvars.ContextVar("lea
 
 
 def _stage(name: str):
-    """Announce the stage to the listeners and record its seconds in the run's timings."""
+    """Announce the stage to the listeners, record its seconds in the run's timings, and hand the
+    memory it freed back to the system (the next stage's peak does not carry this one's leftovers)."""
     def wrap(fn):
         @functools.wraps(fn)
         def timed(*args, **kwargs):
@@ -66,6 +68,7 @@ def _stage(name: str):
                 listen(name)
             t0 = time.perf_counter()
             out = fn(*args, **kwargs)
+            release_memory()
             timings = _TIMINGS.get(None)
             if timings is not None:
                 timings[name] = round(time.perf_counter() - t0, 3)
@@ -231,6 +234,9 @@ def run_stages(config: Config, stages: SimpleNamespace = TASKS, wait: float = 0.
                 front = stages.frontier(evaluator, config)
                 extra["frontier"] = front.to_dict(orient="records")
                 files = frontier_files(front, config.verify.metric)
+            evaluator = None
+            frame.release_features()  # every model is trained; the write stage reads no features
+            release_memory()
             return stages.write(frame, scores, selection, verdict, config, parent, extra, files)
     finally:
         _TIMINGS.reset(token)
@@ -275,25 +281,27 @@ def _publish(run_dir: str) -> State | str:
 
 @flow(name="leanset-prune", log_prints=False)
 def prune_flow(config: Config | str, overrides: dict[str, Any] | None = None, wait: float = 0.0,
-               use_cache: bool = True) -> str:
+               use_cache: bool = True, checked: Checked | None = None) -> str:
     """One run: load, score, search the fraction when it is ``auto``, select (stable against the
     parent run), verify, write, publish its artifacts; returns the run directory.
 
     ``config`` is a validated :class:`~leanset.config.Config`, or the path of a YAML config to
     which ``overrides`` (dotted keys) apply. The flow run ends Failed when the verdict is ``fail``.
+    ``checked`` is what :func:`~leanset.preflight.preflight` returned for this config, when the
+    caller already ran it; without it the flow runs it first.
     """
     with _stage_logs():
-        run_dir = _on_engine(_config(config, overrides), wait, frontier=False, use_cache=use_cache)
+        run_dir = _on_engine(_config(config, overrides), wait, frontier=False, use_cache=use_cache, checked=checked)
         return _publish(run_dir)
 
 
 @flow(name="leanset-frontier", log_prints=False)
 def frontier_flow(config: Config | str, overrides: dict[str, Any] | None = None, wait: float = 0.0,
-                  use_cache: bool = True) -> str:
+                  use_cache: bool = True, checked: Checked | None = None) -> str:
     """A run plus the frontier: every grid fraction × strategy, judged against one full-data fit.
     It ends Completed whatever the verdict at the configured fraction: the frontier is the result."""
     with _stage_logs():
-        run_dir = _on_engine(_config(config, overrides), wait, frontier=True, use_cache=use_cache)
+        run_dir = _on_engine(_config(config, overrides), wait, frontier=True, use_cache=use_cache, checked=checked)
         publish_task(run_dir)
         return run_dir
 
@@ -304,10 +312,10 @@ def dask_flow(config: Config, wait: float, frontier: bool, use_cache: bool = Tru
     return run_stages(config, TASKS, wait, frontier, use_cache)
 
 
-def _on_engine(config: Config, wait: float, frontier: bool, use_cache: bool) -> str:
+def _on_engine(config: Config, wait: float, frontier: bool, use_cache: bool, checked: Checked | None = None) -> str:
     """The run in the calling flow (``execution.engine: local``), or in :func:`dask_flow` on the
     scheduler at ``execution.address`` or a local cluster of ``execution.workers`` processes (``dask``)."""
-    preflight(config)  # everything checkable, before the lock is taken or any fit starts
+    ensure_checked(config, checked)  # everything checkable, before the lock is taken or any fit starts
     execution = config.execution
     if execution.engine == "local":
         return run_stages(config, TASKS, wait, frontier, use_cache)

@@ -17,21 +17,31 @@ import re
 import tempfile
 import warnings
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
 import pyarrow as pa
 
-from .config import Config, ProxyConfig, TargetConfig
+from .config import Config, ProxyConfig, TargetConfig, check_engine
 from .errors import ConfigError, StoreError
+from .load.memory import release_memory
 from .load.table import InputSummary, check_input
 
 #: Rows of the invented dataset the LightGBM parameters are tried on.
 _TINY_ROWS = 60
 
 
-def preflight(config: Config, table: pa.Table | None = None) -> InputSummary:
+class Checked(NamedTuple):
+    """What :func:`preflight` returns: the hash of the config it passed (``Config.section_hash``)
+    and what it learned of the table. Handed to a flow, it spares the flow a second check of the
+    same config (:func:`ensure_checked`)."""
+
+    config_hash: str
+    summary: InputSummary
+
+
+def preflight(config: Config, table: pa.Table | None = None) -> Checked:
     """Check the table, the store, the proxy and the target of ``config`` before any fit.
 
     Parameters
@@ -42,8 +52,8 @@ def preflight(config: Config, table: pa.Table | None = None) -> InputSummary:
 
     Returns
     -------
-    InputSummary
-        The task, rows, classes and features of the table.
+    Checked
+        The config's hash and the task, rows, classes and features of the table.
 
     Raises
     ------
@@ -52,13 +62,20 @@ def preflight(config: Config, table: pa.Table | None = None) -> InputSummary:
         at fault, and the fix.
     """
     summary = check_input(config, table)
-    check_settings(config, summary)
+    release_memory()  # the row groups decoded by the table scan
+    # the checks that need no LightGBM, scikit-learn or Dask first: their refusals come fastest
+    check_engine(config)
     check_store(config.store)
-    if config.execution.engine == "dask":
-        from .scores.cluster import check_config
+    check_settings(config, summary)
+    return Checked(config.section_hash(), summary)
 
-        check_config(config)
-    return summary
+
+def ensure_checked(config: Config, checked: Checked | None = None) -> None:
+    """Run :func:`preflight` unless ``checked`` is what it returned for this very config (same
+    hash): the command checks before the flow starts and hands the flow its token, so a run is
+    checked once; a flow started any other way (a deployment, a script) checks for itself."""
+    if checked is None or checked[0] != config.section_hash():
+        preflight(config)
 
 
 def check_settings(config: Config, summary: InputSummary) -> None:

@@ -77,6 +77,15 @@ class RowFrame:
         """Indices of the training rows (those that may be pruned)."""
         return np.flatnonzero(~self.holdout)
 
+    def release_features(self) -> None:
+        """Let go of the feature matrix held in memory (``X`` becomes None): from then on features
+        are read from the table in batches, as when the matrix did not fit. The run calls it once
+        the last model is trained, so the write stage does not hold the matrix as well.
+
+        The frame is otherwise frozen; this is the one field that may change, and only to None.
+        """
+        object.__setattr__(self, "X", None)
+
     def encode(self, batch: pa.Table | pa.RecordBatch) -> np.ndarray:
         """The float32 feature matrix of a batch of original columns, with this run's category codes."""
         k = len(self.feature_names) - len(self.categorical)
@@ -114,18 +123,18 @@ class RowFrame:
             out[lo:lo + len(X)] = X
         return out
 
-    def feature_rows(self, rows: np.ndarray):
-        """The float32 features of ``rows`` (ascending positions in table order): an array when ``X``
-        is in memory, else a :class:`RowView` that reads them from disk when used."""
-        return self.X[rows] if self.X is not None else RowView(self, rows)
+    def feature_rows(self, rows: np.ndarray) -> RowView:
+        """The features of ``rows`` (ascending positions in table order) as a :class:`RowView`: no
+        copy is made until it is used, whether ``X`` is in memory or read from disk."""
+        return RowView(self, rows)
 
 
 class RowView:
-    """Rows of a :class:`RowFrame` whose features are not held, read in batches when used.
+    """Rows of a :class:`RowFrame`, gathered or read in batches only when used.
 
     ``view[idx]`` is the view of those of its rows (``idx`` ascending), ``np.asarray(view)``
-    gathers them, and :meth:`batches` streams them, so LightGBM can train on any subset of a
-    table larger than memory through its ``Sequence`` interface.
+    gathers them, and :meth:`batches` streams them, so LightGBM can train on any subset of the
+    table through its ``Sequence`` interface without a gathered copy, in memory or not.
     """
 
     def __init__(self, frame: RowFrame, rows: np.ndarray):

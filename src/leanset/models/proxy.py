@@ -65,12 +65,16 @@ class FittedProxy:
     """One fold's proxy: predicts class probabilities (or values) and serialises without pickling.
 
     ``y_shift`` and ``y_scale`` undo the label standardisation of a linear regression proxy.
+    ``iterations`` holds the boosting iterations a gbdt model had at each checkpoint: LightGBM drops
+    an iteration in which no tree could split (with bagging, a later one may split again), so a
+    checkpoint can hold fewer iterations than rounds.
     """
 
     family: str
     model: Any
     y_shift: float = 0.0
     y_scale: float = 1.0
+    iterations: tuple[int, ...] = ()
 
     def predict(self, X: np.ndarray) -> np.ndarray:
         """Predicted values of a regression proxy, shape (n,)."""
@@ -164,12 +168,13 @@ def fit_gbdt(X, y, n_classes, categorical, config: ProxyConfig, seed: int, on_ch
         data.set_label(y)
     else:
         data = lgb.Dataset(X, label=y, categorical_feature=categorical or "auto", free_raw_data=True)
-    t = 0
+    t, iterations = 0, []
 
     def record(env: lgb.callback.CallbackEnv) -> None:
         nonlocal t
         if (env.iteration + 1) % config.checkpoint_every == 0:
             t += 1
+            iterations.append(env.model.current_iteration())
             raw = training_scores(env.model)
             on_checkpoint(t, _LogProba(raw) if n_classes else raw)
 
@@ -178,7 +183,7 @@ def fit_gbdt(X, y, n_classes, categorical, config: ProxyConfig, seed: int, on_ch
     model = lgb.Booster(model_str=booster.model_to_string())
     del booster
     release_memory()
-    return FittedProxy("gbdt", model)
+    return FittedProxy("gbdt", model, iterations=tuple(iterations))
 
 
 class _LogProba:

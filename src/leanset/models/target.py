@@ -63,8 +63,11 @@ def fit_target(X: np.ndarray, y: np.ndarray, weight: np.ndarray | None, n_classe
                categorical: list[int], config: TargetConfig, seed: int) -> FittedTarget:
     """Train the configured target on (X, y) with optional per-row weights.
 
-    ``X`` may be a :class:`~leanset.load.rows.RowView` (features not held): LightGBM then reads it
-    through its ``Sequence`` interface, batch by batch; a scikit-learn estimator gets it gathered.
+    ``X`` may be a :class:`~leanset.load.rows.RowView`: LightGBM then reads it through its
+    ``Sequence`` interface, batch by batch, so the rows are never gathered into a copy; a
+    scikit-learn estimator gets them gathered. LightGBM's bin sample is drawn with
+    ``data_random_seed`` = ``seed`` (unless the params set it), which makes a ``Sequence`` bin as
+    the gathered matrix does: the same rows give the same model either way.
     """
     if isinstance(X, RowView):
         X = np.asarray(X) if config.family == "sklearn" else BatchSequence(X.batches, len(X), X.batch_rows)
@@ -73,6 +76,9 @@ def fit_target(X: np.ndarray, y: np.ndarray, weight: np.ndarray | None, n_classe
         est.fit(X, y, sample_weight=weight) if weight is not None else est.fit(X, y)
         return FittedTarget(n_classes, estimator=est)
     params = {**LIGHTGBM_DEFAULTS, **config.params, "seed": seed}
+    if not {"data_random_seed", "data_seed"} & params.keys():
+        # a Sequence's bin sample follows data_random_seed only, a matrix's follows seed too
+        params["data_random_seed"] = seed
     rounds = int(params.pop("num_boost_round", params.pop("n_estimators", LIGHTGBM_ROUNDS)))
     params.update({"objective": "multiclass", "num_class": n_classes} if n_classes > 2 else {"objective": "binary"})
     if n_classes == 0:

@@ -38,25 +38,7 @@ def summary(run: dict[str, Any], run_dir: str | Path) -> Table:
     suspects = (f"; {sel['suspect_dropped']:,} suspected label errors dropped" if sel.get("suspect_dropped") else
                 f"; {kept['rows']:,} suspected label errors left eligible ({kept['because']})" if kept else "")
     table.add_row("selection", f"{cfg['strategy']} on {cfg['score']}, {cfg['quotas']} class quotas{suspects}")
-    lo, hi = v["ci"]
-    carried = v.get("carried")
-    if carried:  # never shown as a fresh verdict: the figures below are the source run's
-        table.add_row("verdict", carried_text(v))
-    table.add_row("carried verdict" if carried else "verdict",
-                  f"{(carried or v)['status'].upper()}: Δ {v['metric']} = {v['delta']:+.4f}, "
-                  f"{run['config']['verify']['confidence']:.0%} CI [{lo:+.4f}, {hi:+.4f}], tolerance {v['tolerance']}")
-    table.add_row(v["metric"], f"full {v['full']:.4f} · kept {v['kept']:.4f} · random same size {v['random']:.4f}")
-    table.add_row("class recall", " · ".join(f"{name} {r['full']:.2f}→{r['kept']:.2f}" for name, r in v["per_class_recall"].items()))
-    if v.get("calibration"):
-        cal, name = v["calibration"], "Brier score" if len(v["per_class_recall"]) == 2 else "log loss"
-        guard = ""
-        if "excess" in cal:
-            guard = (f"; kept {cal['excess']:+.1%} against full, CI [{cal['ci'][0]:+.1%}, {cal['ci'][1]:+.1%}], "
-                     f"guard {'FAILED' if cal['failed'] else 'ok'} at +{cal['tolerance']:.0%}")
-        table.add_row("calibration", f"{name} (lower is better): full {cal['full']:.4f} · kept {cal['kept']:.4f} · "
-                      f"random {cal['random']:.4f}{guard}")
-    if v["failed_classes"]:
-        table.add_row("class guard", "recall dropped too far for: " + ", ".join(v["failed_classes"]))
+    _verdict_rows(table, run)
     if "search" in run:
         tried = ", ".join(f"{t['fraction']:g} {t['status']}" + (f" ({t['blocked_by']})" if t.get("blocked_by") else "")
                           for t in run["search"]["tried"])
@@ -87,6 +69,31 @@ def summary(run: dict[str, Any], run_dir: str | Path) -> Table:
     table.add_row("report", Text(str(Path(run_dir) / "report.html"), overflow="fold"))
     table.add_row("caution", CAUTION)
     return table
+
+
+def _verdict_rows(table: Table, run: dict[str, Any]) -> None:
+    """The verdict's rows of the summary: status and Δ, the metric of each model, class recalls,
+    calibration and the class guard."""
+    v = run["verdict"]
+    lo, hi = v["ci"]
+    carried = v.get("carried")
+    if carried:  # never shown as a fresh verdict: the figures below are the source run's
+        table.add_row("verdict", carried_text(v))
+    table.add_row("carried verdict" if carried else "verdict",
+                  f"{(carried or v)['status'].upper()}: Δ {v['metric']} = {v['delta']:+.4f}, "
+                  f"{run['config']['verify']['confidence']:.0%} CI [{lo:+.4f}, {hi:+.4f}], tolerance {v['tolerance']}")
+    table.add_row(v["metric"], f"full {v['full']:.4f} · kept {v['kept']:.4f} · random same size {v['random']:.4f}")
+    table.add_row("class recall", " · ".join(f"{name} {r['full']:.2f}→{r['kept']:.2f}" for name, r in v["per_class_recall"].items()))
+    if v.get("calibration"):
+        cal, name = v["calibration"], "Brier score" if len(v["per_class_recall"]) == 2 else "log loss"
+        guard = ""
+        if "excess" in cal:
+            guard = (f"; kept {cal['excess']:+.1%} against full, CI [{cal['ci'][0]:+.1%}, {cal['ci'][1]:+.1%}], "
+                     f"guard {'FAILED' if cal['failed'] else 'ok'} at +{cal['tolerance']:.0%}")
+        table.add_row("calibration", f"{name} (lower is better): full {cal['full']:.4f} · kept {cal['kept']:.4f} · "
+                      f"random {cal['random']:.4f}{guard}")
+    if v["failed_classes"]:
+        table.add_row("class guard", "recall dropped too far for: " + ", ".join(v["failed_classes"]))
 
 
 def carried_text(v: dict[str, Any]) -> str:

@@ -1,17 +1,16 @@
 """Score stage on a Dask cluster (``execution.engine: dask``), for the gbdt proxy.
 
 The driver keeps only the small per-row arrays of the :class:`~leanset.load.rows.RowFrame` (labels,
-folds, holdout). The input parquet files are cut into partitions of whole row groups, sliced to
-at most ``execution.batch_rows`` rows and spread over the workers; each worker reads its
-partitions, encodes them into float32 features as the load stage does, and keeps the training
-rows. A partition's place in table order is its row offset, so its training rows are one
-contiguous slice of ``frame.train``.
+folds, holdout); the workers read and hold the training rows' features (:mod:`leanset.scores.shards`).
 
 Each fold model is one ``lightgbm.dask`` fit on the rows with fold != k. Its checkpoints are
-replayed on the workers, partition by partition: raw scores are predicted tree range by tree range
-(``checkpoint_every`` trees at a time) and summed, and folded into the same
+replayed on the workers, partition by partition: raw scores are predicted iteration range by
+iteration range and summed, and folded into the same
 :class:`~leanset.scores.dynamics.Dynamics` (:class:`~leanset.scores.dynamics.ResidualDynamics` for regression) as
-the local score stage, so every column means what it means there. Out-of-fold predictions come
+the local score stage, so every column means what it means there. A range holds the iterations
+the model gained between two checkpoints, as the fit recorded them: ``checkpoint_every``, or fewer
+when LightGBM dropped an iteration in which no tree could split (with bagging, a later iteration
+may split again). Out-of-fold predictions come
 from the same pass. Repeats and the AUM threshold samples run as in :func:`leanset.scores.dynamics.score`.
 
 How a proxy is fitted is ``execution.dask_fits``:
@@ -34,35 +33,32 @@ How a proxy is fitted is ``execution.dask_fits``:
 
 from __future__ import annotations
 
-import math
 import time
 import warnings
 from collections.abc import Iterator
 from contextlib import contextmanager
-from dataclasses import dataclass, replace
+from dataclasses import replace
 from typing import Any
 
 import lightgbm as lgb
 import numpy as np
 import pandas as pd
-import pyarrow as pa
-import pyarrow.dataset as ds
-import pyarrow.parquet as pq
 
-from ..config import SCORE_NAMES, Config, ExecutionConfig, ProxyConfig
-from ..errors import ConfigError, InputError
+from ..config import SCORE_NAMES, Config, ExecutionConfig, ProxyConfig, check_engine
+from ..errors import ConfigError
 from ..models.proxy import (FittedProxy, binary_logits, binned_dataset, class_rounds, fit_proxy, gbdt_params, n_checkpoints,
                             proba_matrix)
 from .dynamics import (Dynamics, ResidualDynamics, Scores, aum_cutoff, margin, repeat_folds, residual_band, stability,
                        threshold_config, wants_threshold_samples)
-from ..load.rows import RowFrame, encode_columns
+from ..load.rows import RowFrame
 
 try:
-    import dask.array as da
-    from distributed import Client, Future, LocalCluster
+    from distributed import Client, LocalCluster
     from lightgbm.dask import DaskLGBMRegressor
 except ImportError:
     raise ConfigError("execution.engine: dask needs the dask extra; pip install 'leanset[dask]' or set execution.engine local") from None
+
+from .shards import Shards, load_shards  # noqa: E402  (needs dask, checked above)
 
 
 def local_cluster_kwargs(execution: ExecutionConfig) -> dict[str, Any]:
@@ -82,134 +78,6 @@ def open_client(execution: ExecutionConfig) -> Iterator[Client]:
         return
     with LocalCluster(**local_cluster_kwargs(execution)) as cluster, Client(cluster, set_as_default=False) as client:
         yield client
-
-
-def check_config(config: Config) -> None:
-    """Refuse what the dask score stage cannot run, before a cluster starts.
-
-    Raises
-    ------
-    ConfigError
-        For the linear proxy or a CSV input.
-    """
-    if config.proxy.family != "gbdt":
-        raise ConfigError("proxy.family linear runs on the local engine only; use gbdt or execution.engine local")
-    if config.input.path.is_file() and config.input.path.suffix.lower() in (".csv", ".tsv", ".txt"):
-        raise ConfigError(f"input.path: {config.input.path} is a CSV file and execution.engine dask reads parquet only; convert it to parquet or use execution.engine local")
-
-
-@dataclass(frozen=True)
-class Partition:
-    """Rows ``start`` .. ``start + rows`` of the table (in load order): row groups of one parquet
-    file, read whole, of which the partition skips the first ``skip`` rows."""
-
-    path: str
-    row_groups: tuple[int, ...]
-    skip: int
-    rows: int
-    start: int
-
-
-def partitions(path, size: int) -> list[Partition]:
-    """Cut the parquet file or folder at ``path`` into partitions of at most ``size`` rows, in table order."""
-    out, start = [], 0
-    for fragment in ds.dataset(path, format="parquet").get_fragments():
-        sizes = np.array([g.num_rows for g in fragment.row_groups], np.int64)
-        ends = np.cumsum(sizes)
-        total = int(sizes.sum())
-        for a in range(0, total, size):
-            b = min(a + size, total)
-            first, last = int(np.searchsorted(ends, a, side="right")), int(np.searchsorted(ends, b - 1, side="right"))
-            out.append(Partition(fragment.path, tuple(range(first, last + 1)), a - int(ends[first] - sizes[first]), b - a, start + a))
-        start += total
-    return out
-
-
-def read_partition(part: Partition, frame_spec: dict, y: np.ndarray, keep: np.ndarray) -> np.ndarray:
-    """Read ``part`` and return the features of its rows ``keep`` (a worker task).
-
-    ``y`` holds the label codes (or values) the load stage gave the partition's rows; the rows read
-    must carry the same labels, or the file changed since the load stage.
-    """
-    label = frame_spec["label"]
-    table = pq.ParquetFile(part.path).read_row_groups(list(part.row_groups), columns=[*frame_spec["feature_names"], label])
-    table = table.slice(part.skip, part.rows)
-    values = table.column(label).to_pandas()
-    read = values.to_numpy(np.float64) if frame_spec["regression"] else pd.Categorical(values, categories=frame_spec["classes"]).codes
-    if len(read) != len(y) or not np.array_equal(read, y):
-        raise InputError(f"{part.path}: rows {part.start}..{part.start + part.rows - 1} differ from the table the load stage read; rerun so both stages read the same file")
-    names, k = frame_spec["feature_names"], frame_spec["n_numeric"]
-    return encode_columns(table.take(pa.array(keep, pa.int64())).to_pandas(), names[:k], names[k:], frame_spec["categories"])
-
-
-def _take(X: np.ndarray, rows: np.ndarray) -> np.ndarray:
-    return X[rows]
-
-
-@dataclass
-class Shards:
-    """The training rows' features, held on the workers: shard i is rows ``bounds[i]`` of ``frame.train`` order."""
-
-    client: Client
-    futures: list[Future]
-    workers: list[str]
-    bounds: list[tuple[int, int]]
-    n_features: int
-
-    def fit_data(self, rows: np.ndarray, labels: np.ndarray) -> tuple[Any, Any]:
-        """Dask arrays of the features and ``labels`` of the rows where ``rows`` (bool, train order) is set."""
-        xs, ys = [], []
-        for fut, worker, (lo, hi) in zip(self.futures, self.workers, self.bounds):
-            sel = np.flatnonzero(rows[lo:hi])
-            if len(sel) == 0:
-                continue
-            x = self.client.submit(_take, fut, sel, workers=[worker], allow_other_workers=False)
-            [y] = self.client.scatter([labels[lo:hi][sel]], workers=[worker])
-            xs.append(da.from_delayed(x, shape=(len(sel), self.n_features), dtype=np.float32))
-            ys.append(da.from_delayed(y, shape=(len(sel),), dtype=labels.dtype))
-        return da.concatenate(xs), da.concatenate(ys)
-
-    def broadcast(self, value: Any) -> Future:
-        """``value`` copied to every worker once, for tasks to share."""
-        [future] = self.client.scatter([value], broadcast=True)
-        return future
-
-    def map(self, fn, *per_row: np.ndarray, **shared) -> list:
-        """``fn(X_shard, *slices, **shared)`` on every shard's worker, ``per_row`` arrays sliced to the shard; results in order."""
-        futures = [self.client.submit(fn, fut, *(a[lo:hi] for a in per_row), **shared, workers=[worker], allow_other_workers=False)
-                   for fut, worker, (lo, hi) in zip(self.futures, self.workers, self.bounds)]
-        return self.client.gather(futures)
-
-
-def load_shards(client: Client, frame: RowFrame, config: Config) -> Shards:
-    """Read the input on the workers: the training rows' features, partition by partition.
-
-    Raises
-    ------
-    InputError
-        When the files hold another number of rows than ``frame``.
-    """
-    workers = sorted(client.scheduler_info(n_workers=-1)["workers"])
-    if not workers:
-        raise ConfigError(f"execution.address: the scheduler at {config.execution.address} has no workers; start some, or leave execution.address unset for a local cluster")
-    n = len(frame.row_id)
-    parts = partitions(config.input.path, max(1, min(config.execution.batch_rows, math.ceil(n / len(workers)))))
-    total = sum(p.rows for p in parts)
-    if total != n:
-        raise InputError(f"{config.input.path}: holds {total} rows but the load stage read {n}; rerun so both stages read the same files")
-    spec = {"label": config.input.label, "feature_names": frame.feature_names, "n_numeric": len(frame.feature_names) - len(frame.categorical),
-            "categories": frame.categories, "classes": frame.classes, "regression": not frame.classes}
-    [spec] = client.scatter([spec], broadcast=True)
-    futures, placed, bounds, lo = [], [], [], 0
-    for i, part in enumerate(parts):
-        keep = np.flatnonzero(~frame.holdout[part.start:part.start + part.rows])
-        worker = workers[i % len(workers)]
-        futures.append(client.submit(read_partition, part, spec, frame.y[part.start:part.start + part.rows], keep,
-                                     workers=[worker], allow_other_workers=False))
-        placed.append(worker)
-        bounds.append((lo, lo + len(keep)))
-        lo += len(keep)
-    return Shards(client, futures, placed, bounds, len(frame.feature_names))
 
 
 class _AskedOrder:
@@ -232,25 +100,41 @@ class _AskedOrder:
         return {f.key: found[f.key] for f in futures}
 
 
+class _Iterations:
+    """A LightGBM callback that notes on the booster the iterations it holds at each checkpoint
+    (``booster.leanset_iterations``); the note travels with the booster from a Dask worker."""
+
+    def __init__(self, every: int):
+        self.every = every
+
+    def __call__(self, env: lgb.callback.CallbackEnv) -> None:
+        if (env.iteration + 1) % self.every == 0:
+            env.model.leanset_iterations = (*getattr(env.model, "leanset_iterations", ()), env.model.current_iteration())
+
+
 def fit_booster(shards: Shards, rows: np.ndarray, labels: np.ndarray, n_classes: int, categorical: list[int],
-                config: ProxyConfig, seed: int) -> lgb.Booster:
+                config: ProxyConfig, seed: int) -> tuple[str, tuple[int, ...]]:
     """``lightgbm.dask`` fit of the gbdt proxy on the rows where ``rows`` is set, with the params of
     :func:`leanset.models.proxy.gbdt_params` (objective and ``num_class`` included) and ``config.rounds`` trees.
 
     Classes are fitted through ``DaskLGBMRegressor`` too: it hands the label codes to LightGBM as
     they are, as ``lightgbm.train`` gets them locally, whereas ``DaskLGBMClassifier`` re-encodes
     them on each worker from the classes that worker happens to hold.
+
+    Returns the model text and the iterations it held at each checkpoint.
     """
     model = DaskLGBMRegressor(client=_AskedOrder(shards.client), n_estimators=config.rounds, **gbdt_params(n_classes, config, seed))
     X, y = shards.fit_data(rows, labels)
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message="Parameter .* will be ignored")
-        model.fit(X, y, categorical_feature=categorical or "auto")
-    return model.booster_
+        model.fit(X, y, categorical_feature=categorical or "auto", callbacks=[_Iterations(config.checkpoint_every)])
+    return model.booster_.model_to_string(), model.booster_.leanset_iterations
 
 
-def fit_whole(frame: RowFrame, rows: np.ndarray | None, labels: np.ndarray, n_classes: int, config: Config, seed: int) -> str:
-    """Fit one gbdt proxy whole, as the local engine does (a worker task); its model text.
+def fit_whole(frame: RowFrame, rows: np.ndarray | None, labels: np.ndarray, n_classes: int, config: Config,
+              seed: int) -> tuple[str, tuple[int, ...]]:
+    """Fit one gbdt proxy whole, as the local engine does (a worker task); its model text and the
+    iterations it held at each checkpoint.
 
     The training rows are read and binned as :func:`leanset.scores.dynamics.score` bins them, then the fit
     runs on the rows ``rows`` (positions among the training rows; all when None) with ``labels``.
@@ -262,7 +146,7 @@ def fit_whole(frame: RowFrame, rows: np.ndarray | None, labels: np.ndarray, n_cl
                             pc, config.seed, config.execution.batch_rows)
     model = fit_proxy(binned if rows is None else binned.subset(rows), labels, n_classes, frame.categorical, pc, seed,
                       lambda t, z: None)
-    return model.model.model_to_string()
+    return model.model.model_to_string(), model.iterations
 
 
 #: Share of a worker's memory limit one whole fit may take under ``dask_fits: auto`` (the rest is
@@ -308,32 +192,43 @@ class Fitter:
         # the per-row arrays only: workers read the features themselves
         self.frame = shards.broadcast(replace(frame, X=None)) if self.whole else None
 
-    def fit(self, jobs: list[tuple[np.ndarray, np.ndarray, int, int]], proxy: ProxyConfig | None = None) -> list[str]:
-        """Model texts of one fit per ``(rows, labels, n_classes, seed)`` job: ``rows`` (bool, training
+    def fit(self, jobs: list[tuple[np.ndarray, np.ndarray, int, int]],
+            proxy: ProxyConfig | None = None) -> list[tuple[str, tuple[int, ...]]]:
+        """Model text and checkpoint iterations of one fit per ``(rows, labels, n_classes, seed)`` job: ``rows`` (bool, training
         order) selects the rows and ``labels`` holds every training row's label. ``proxy`` replaces
         the config's proxy settings."""
         proxy = proxy or self.config.proxy
         if not self.whole:
-            return [fit_booster(self.shards, rows, labels, k, self.categorical, proxy, seed).model_to_string()
-                    for rows, labels, k, seed in jobs]
+            return [fit_booster(self.shards, rows, labels, k, self.categorical, proxy, seed) for rows, labels, k, seed in jobs]
         config = self.config.model_copy(update={"proxy": proxy})
         futures = [self.shards.client.submit(fit_whole, self.frame, None if rows.all() else np.flatnonzero(rows), labels[rows],
                                              k, config, seed, pure=False) for rows, labels, k, seed in jobs]
         return self.shards.client.gather(futures)
 
 
-def _checkpoints(booster: lgb.Booster, X: np.ndarray, n_classes: int, T: int, every: int) -> Iterator[np.ndarray]:
-    """Raw scores after each ``every`` trees, summed tree range by tree range; binary as logits [0, z]."""
+def _checkpoints(booster: lgb.Booster, X: np.ndarray, n_classes: int, iterations: tuple[int, ...]) -> Iterator[np.ndarray]:
+    """Raw scores at each checkpoint, the model's first ``iterations[t]`` iterations, summed range
+    by range; binary as logits [0, z]."""
     z = np.zeros((len(X), n_classes) if n_classes > 2 else len(X))
-    for t in range(T):
-        z = z + booster.predict(X, raw_score=True, start_iteration=t * every, num_iteration=every)
+    done = 0
+    for upto in iterations:
+        if upto > done:  # no iteration since the last checkpoint: the same scores
+            z = z + booster.predict(X, raw_score=True, start_iteration=done, num_iteration=upto - done)
+            done = upto
         yield binary_logits(z) if n_classes else z
 
 
+def _every(T: int, every: int) -> tuple[int, ...]:
+    """Checkpoint iterations of a fit that dropped none: ``every``, 2 ``every``, … ``T`` ``every``."""
+    return tuple(every * t for t in range(1, T + 1))
+
+
 def shard_scores(X: np.ndarray, y: np.ndarray, fold: np.ndarray, models: list[str], n_classes: int, T: int, every: int,
-                 el2n_at: int, band: float) -> pd.DataFrame:
+                 el2n_at: int, band: float, iterations: list[tuple[int, ...]] | None = None) -> pd.DataFrame:
     """Scores of one shard's rows from the fold models (model texts, fold order): a worker task.
 
+    ``iterations`` holds each model's iterations at its ``T`` checkpoints, as its fit recorded them
+    (``FittedProxy.iterations``); None when no fit dropped an iteration (``every``, 2 ``every``, …).
     Columns as :func:`leanset.scores.dynamics.score` computes them for one repeat, plus ``never_learned``.
     """
     n = len(y)
@@ -344,7 +239,8 @@ def shard_scores(X: np.ndarray, y: np.ndarray, fold: np.ndarray, models: list[st
         fit_rows, out_rows = np.flatnonzero(fold != k), np.flatnonzero(fold == k)
         dyn.start_model(fit_rows)
         if len(fit_rows):  # LightGBM predicts shape (0,) for no rows, whatever the classes
-            for t, z in enumerate(_checkpoints(booster, X[fit_rows], n_classes, T, every), start=1):
+            marks = iterations[k] if iterations is not None else _every(T, every)
+            for t, z in enumerate(_checkpoints(booster, X[fit_rows], n_classes, marks), start=1):
                 dyn.update(t, fit_rows, z, y[fit_rows])
         if len(out_rows):
             pred = booster.predict(X[out_rows])
@@ -359,38 +255,40 @@ def shard_scores(X: np.ndarray, y: np.ndarray, fold: np.ndarray, models: list[st
     return pd.DataFrame(out)
 
 
-def shard_aum(X: np.ndarray, labels: np.ndarray, model: str, T: int, every: int) -> np.ndarray:
-    """AUM of one shard's rows under ``labels`` from one multiclass model (model text): a worker task."""
+def shard_aum(X: np.ndarray, labels: np.ndarray, model: str, iterations: tuple[int, ...]) -> np.ndarray:
+    """AUM of one shard's rows under ``labels`` from one multiclass model (model text) at its
+    checkpoint ``iterations``: a worker task."""
     total = np.zeros(len(labels))
     if not len(labels):
         return total
     booster = lgb.Booster(model_str=model)
-    for z in _checkpoints(booster, X, booster.num_model_per_iteration(), T, every):
+    for z in _checkpoints(booster, X, booster.num_model_per_iteration(), iterations):
         total += margin(z, labels)
-    return total / T
+    return total / len(iterations)
 
 
-def _cross_fit(fitter: Fitter, y, fold, n_classes, pc: ProxyConfig, seeds) -> tuple[dict, list[lgb.Booster]]:
+def _cross_fit(fitter: Fitter, y, fold, n_classes, pc: ProxyConfig, seeds) -> tuple[dict, list[FittedProxy]]:
     """One cross-fitting pass on the cluster: a fold model per fold, then every shard's scores."""
     T = n_checkpoints(pc)
-    texts = fitter.fit([(fold != k, y, n_classes, seeds[k]) for k in range(pc.folds)])
+    texts, iterations = zip(*fitter.fit([(fold != k, y, n_classes, seeds[k]) for k in range(pc.folds)]))
     band = 0.0 if n_classes else residual_band(y, pc)
     shards = fitter.shards
-    frames = shards.map(shard_scores, y, fold, models=shards.broadcast(texts),
-                        n_classes=n_classes, T=T, every=pc.checkpoint_every, el2n_at=max(1, int(round(pc.el2n_at * T))), band=band)
+    frames = shards.map(shard_scores, y, fold, models=shards.broadcast(list(texts)), n_classes=n_classes, T=T,
+                        every=pc.checkpoint_every, el2n_at=max(1, int(round(pc.el2n_at * T))), band=band,
+                        iterations=list(iterations))
     table = pd.concat(frames, ignore_index=True)
-    return {name: table[name].to_numpy() for name in table.columns}, [lgb.Booster(model_str=t) for t in texts]
+    return ({name: table[name].to_numpy() for name in table.columns},
+            [FittedProxy("gbdt", lgb.Booster(model_str=t), iterations=i) for t, i in zip(texts, iterations)])
 
 
 def threshold_samples(fitter: Fitter, y: np.ndarray, n_classes: int, config: ProxyConfig, seed: int) -> tuple[np.ndarray, dict]:
     """:func:`leanset.scores.dynamics.threshold_samples` with the cluster's fits: same slices, seeds, cut-offs and verdicts."""
     config = threshold_config(config)
-    T, every = n_checkpoints(config), config.checkpoint_every
     shards = fitter.shards
 
     def fit_aum(labels: np.ndarray, k: int, fit_seed: int) -> np.ndarray:
-        [text] = fitter.fit([(np.ones(len(y), bool), labels, k, fit_seed)], proxy=config)
-        return np.concatenate(shards.map(shard_aum, labels, model=shards.broadcast(text), T=T, every=every))
+        [(text, iterations)] = fitter.fit([(np.ones(len(y), bool), labels, k, fit_seed)], proxy=config)
+        return np.concatenate(shards.map(shard_aum, labels, model=shards.broadcast(text), iterations=iterations))
     return aum_cutoff(y, n_classes, config, seed, fit_aum)
 
 
@@ -400,14 +298,14 @@ def score(frame: RowFrame, config: Config, client: Client) -> Scores:
     Returns
     -------
     Scores
-        Proxies are the fold boosters of the first repeat.
+        Proxies are the fold models of the first repeat.
 
     Raises
     ------
     ConfigError
-        For the linear proxy or a CSV input (:func:`check_config`).
+        For the linear proxy or a CSV input (:func:`leanset.config.check_engine`).
     """
-    check_config(config)
+    check_engine(config)
     with client.as_current():  # lightgbm.dask waits on futures through the current client
         return _score(frame, config, client)
 
@@ -423,9 +321,9 @@ def _score(frame: RowFrame, config: Config, client: Client) -> Scores:
     runs, proxies = [], []
     for r in range(pc.repeats):
         fold, seeds = repeat_folds(frame, config, r)
-        out, boosters = _cross_fit(fitter, y, fold, n_classes, pc, seeds)
+        out, models = _cross_fit(fitter, y, fold, n_classes, pc, seeds)
         runs.append(out)
-        proxies = proxies or [FittedProxy("gbdt", b) for b in boosters]
+        proxies = proxies or models
     table = pd.DataFrame({name: np.mean([o[name] for o in runs], axis=0) for name in SCORE_NAMES})
     table["never_learned"] = np.logical_and.reduce([o["never_learned"] for o in runs])
     info: dict = {"repeats": pc.repeats, "stability": stability(runs) if pc.repeats > 1 else None, "dask_fits": fitter.choice}

@@ -271,15 +271,37 @@ def select(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, seed:
     budget = max(1, int(round(config.fraction * n)))
     quota = class_quotas(counts, budget, config.quotas, config.class_floor)
     unfloored = class_quotas(counts, budget, config.quotas, 0)
+    keep, reason, stratum, rank = _fill_classes(difficulty, y, pool, quota, unfloored, config, seed, segments)
+    reason[is_copy] = "drop:duplicate"
+    segment_added = _segment_floors(keep, reason, rank, pool, segments, config.segment_floor)
+    w, weight = _weights(difficulty, y, keep, pool, quota, all_counts, config)
+    info = {
+        "budget": budget,
+        "kept": int(keep.sum()),
+        "floor_adjustment": int(quota.sum() - min(budget, pool.sum())) + segment_added,
+        "segment_floor_added": segment_added,
+        "quota": quota.tolist(),
+        "class_counts": all_counts.tolist(),
+        "class_weights": w.tolist(),
+        "duplicates_dropped": int(is_copy.sum()),
+        "conflicting_rows": int(conflict.sum()),
+    }
+    return Selection(keep=keep, reason=reason, stratum=stratum, weight=weight,
+                     dup_count=dup_count, conflict=conflict, info=info)
+
+
+def _fill_classes(difficulty: np.ndarray, y: np.ndarray, pool: np.ndarray, quota: np.ndarray, unfloored: np.ndarray,
+                  config: SelectionConfig, seed: int, segments: np.ndarray | None):
+    """Each class keeps the first ``quota`` rows of its priority order (shared among segment cells in
+    proportion); returns keep, reason, stratum and each row's rank in its class's order (a share)."""
+    n = len(y)
     rng = np.random.default_rng([seed, 0x5E1EC7])
     cells = None if segments is None else np.unique(segments, axis=0, return_inverse=True)[1].ravel()
-
     keep = np.zeros(n, bool)
     reason = np.full(n, "drop:over_budget", dtype=object)
-    reason[is_copy] = "drop:duplicate"
     stratum = np.full(n, -1, np.int16)
     rank = np.full(n, np.inf)  # position in its class's priority order, as a share of the class
-    for c in range(k):
+    for c in range(len(quota)):
         rows = np.flatnonzero((y == c) & pool)
         if len(rows) == 0:  # a class code absent from y: nothing to order (its quota is 0)
             continue
@@ -295,22 +317,34 @@ def select(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, seed:
             reason[kept[np.argsort(rank[kept])[-extra:]]] = "keep:floor"
         if n_cut:
             reason[rows[order[len(order) - n_cut:]]] = "drop:hard_cut"
+    return keep, reason, stratum, rank
 
-    segment_added = 0
+
+def _segment_floors(keep: np.ndarray, reason: np.ndarray, rank: np.ndarray, pool: np.ndarray,
+                    segments: np.ndarray | None, floor: int) -> int:
+    """Raise every segment value to ``min(n_v, floor)`` kept rows, best-ranked first (in place); rows added."""
+    added_total = 0
     for j in range(0 if segments is None else segments.shape[1]):
         for v in np.unique(segments[:, j]):
             members = pool & (segments[:, j] == v)
-            need = min(int(members.sum()), config.segment_floor) - int((keep & members).sum())
+            need = min(int(members.sum()), floor) - int((keep & members).sum())
             if need > 0:
                 spare = np.flatnonzero(members & ~keep)
                 added = spare[np.argsort(rank[spare], kind="stable")[:need]]
                 keep[added] = True
                 reason[added] = "keep:floor"
-                segment_added += len(added)
+                added_total += len(added)
+    return added_total
 
+
+def _weights(difficulty: np.ndarray, y: np.ndarray, keep: np.ndarray, pool: np.ndarray, quota: np.ndarray,
+             all_counts: np.ndarray, config: SelectionConfig) -> tuple[np.ndarray, np.ndarray]:
+    """Class weights (``class_prior`` or ones) and each row's weight (0 when dropped; times the
+    Horvitz–Thompson factor under ``importance``)."""
+    n, k = len(y), len(all_counts)
+    ht = np.ones(n)
     if config.strategy == "importance":
         # Horvitz–Thompson: 1/π of each drawn row, scaled to mean 1 within its class
-        ht = np.zeros(n)
         for c in range(k):
             rows = np.flatnonzero((y == c) & pool)
             if len(rows):
@@ -325,18 +359,5 @@ def select(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, seed:
     else:
         w = np.ones(k)
     weight = np.zeros(n)
-    weight[keep] = w[y[keep]] * (ht[keep] if config.strategy == "importance" else 1.0)
-    info = {
-        "budget": budget,
-        "kept": int(keep.sum()),
-        "floor_adjustment": int(quota.sum() - min(budget, pool.sum())) + segment_added,
-        "segment_floor_added": segment_added,
-        "quota": quota.tolist(),
-        "class_counts": all_counts.tolist(),
-        "class_weights": w.tolist(),
-        "duplicates_dropped": int(is_copy.sum()),
-        "conflicting_rows": int(conflict.sum()),
-    }
-    return Selection(keep=keep, reason=reason, stratum=stratum, weight=weight,
-                     dup_count=dup_count, conflict=conflict, info=info)
-
+    weight[keep] = w[y[keep]] * ht[keep]
+    return w, weight

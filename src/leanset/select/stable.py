@@ -52,7 +52,29 @@ def stabilise(fresh: Selection, difficulty: np.ndarray, y: np.ndarray, previous:
     sticky_keep = old & ~moved & (previous == 1) & eligible
     sticky_drop = old & ~moved & (previous == 0)
     fk = fresh.keep
-    keep = np.zeros(n, bool)
+    keep = _keep_per_class(fk, y, old, moved, sticky_keep, rng)
+
+    reason = fresh.reason.copy()
+    reason[keep & ~fk] = "keep:stable"
+    reason[~keep & fk] = "drop:over_budget"
+    reason[~keep & fk & sticky_drop] = "drop:stable"
+    weight = np.zeros(n)
+    weight[keep & fk] = fresh.weight[keep & fk]
+    for c in np.unique(y[keep & ~fk]):
+        in_c = y == c
+        weight[keep & ~fk & in_c] = fresh.weight[fk & in_c].mean()
+    info = {**fresh.info, "kept": int(keep.sum()), "stable": {
+        "hysteresis": hysteresis, "kept_as_before": int((keep & sticky_keep).sum()),
+        "dropped_as_before": int((~keep & sticky_drop).sum()), "moved": int(moved.sum()), "new": int((~old).sum())}}
+    return replace(fresh, keep=keep, reason=reason, weight=weight, info=info)
+
+
+def _keep_per_class(fk: np.ndarray, y: np.ndarray, old: np.ndarray, moved: np.ndarray, sticky_keep: np.ndarray,
+                    rng: np.random.Generator) -> np.ndarray:
+    """Each class keeps as many rows as ``fk`` (the fresh selection) does: its sticky rows first, then
+    fresh-kept rows by tier (new, moved, parent-dropped); when the sticky rows exceed the quota, the
+    fresh-dropped among them leave first. Ties at random."""
+    keep = np.zeros(len(y), bool)
     for c in np.unique(y):
         rows = np.flatnonzero(y == c)
         quota = int(fk[rows].sum())
@@ -69,21 +91,4 @@ def stabilise(fresh: Selection, difficulty: np.ndarray, y: np.ndarray, previous:
             order = np.lexsort((tie[local], tier))
             chosen = np.concatenate((chosen, rows[local[order[: quota - len(chosen)]]]))
         keep[chosen] = True
-
-    reason = fresh.reason.copy()
-    reason[keep & ~fk] = "keep:stable"
-    reason[~keep & fk] = "drop:over_budget"
-    reason[~keep & fk & sticky_drop] = "drop:stable"
-    weight = np.zeros(n)
-    weight[keep & fk] = fresh.weight[keep & fk]
-    for c in np.unique(y[keep & ~fk]):
-        in_c = y == c
-        weight[keep & ~fk & in_c] = fresh.weight[fk & in_c].mean()
-    info = {**fresh.info, "kept": int(keep.sum()), "stable": {
-        "hysteresis": hysteresis,
-        "kept_as_before": int((keep & sticky_keep).sum()),
-        "dropped_as_before": int((~keep & sticky_drop).sum()),
-        "moved": int(moved.sum()),
-        "new": int((~old).sum()),
-    }}
-    return replace(fresh, keep=keep, reason=reason, weight=weight, info=info)
+    return keep

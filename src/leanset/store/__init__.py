@@ -6,7 +6,7 @@ without loading pandas, pyarrow or the model libraries.
 
 import importlib
 
-_LAZY = {"write_run": "publish", "read_parent": "publish", "store_lock": "publish", "ParentRun": "publish"}
+_LAZY = {"write_run": "publish", "read_parent": "lineage", "store_lock": "publish", "ParentRun": "lineage"}
 
 __all__ = ["ParentRun", "read_parent", "store_lock", "write_run"]
 

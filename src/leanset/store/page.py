@@ -11,7 +11,7 @@ import pyarrow.parquet as pq
 from ..errors import ConfigError, LeansetError
 from ..load.table import _dataset
 from ..report.html import render_html, review_rows
-from .audit import Store, published_runs
+from .reader import Store, published_runs
 
 #: What ``leanset report RUN --list`` can list.
 LISTS = ("suspect", "conflict")

@@ -1,6 +1,6 @@
 """``leanset bench economics``: does pruning pay on a large table with an expensive target?
 
-The table is invented: ``rows / copies`` prototype rows from :func:`leanset.tools.bench.table_chunks`
+The table is invented: ``rows / copies`` prototype rows from :func:`leanset.tools.invented.table_chunks`
 (a seeded linear rule with Gumbel label noise), each drawn ``copies`` times on average with a
 little jitter (redundant rows), ``redundant`` extra columns that are noisy mixes of the first
 ones (redundant features), and a share ``flip`` of labels moved to another class. The run is the
@@ -20,7 +20,8 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import yaml
 
-from .bench import CHUNK_ROWS, machine, table_chunks
+from .bench import machine
+from .invented import CHUNK_ROWS, table_chunks
 from ..errors import ConfigError
 
 #: Columns of the rule; the others are mixes of these.

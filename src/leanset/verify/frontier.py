@@ -20,7 +20,8 @@ from ..select.frame import select_frame
 from ..load.rows import RowFrame
 from ..load.split import validation_split
 from ..models.target import fit_timed
-from .stats import Reference, calibration, calibration_interval, compare, metric_interval, metric_value
+from .stats import calibration, calibration_interval, metric_interval, metric_value
+from .verdict import Reference, compare
 
 DEFAULT_GRID = (0.05, 0.1, 0.2, 0.3, 0.5, 0.7)
 STRATEGIES = ("stratified", "hardest", "easiest", "random")
@@ -59,7 +60,7 @@ class FractionEvaluator:
 
     @property
     def reference(self) -> Reference:
-        """The full-data fit and the feature rows it used, for :func:`~leanset.verify.stats.verify` to reuse."""
+        """The full-data fit and the feature rows it used, for :func:`~leanset.verify.verdict.verify` to reuse."""
         return Reference(self.full_model_, self.full_seconds_, self.X, self.X_hold)
 
     def _fit(self, idx: np.ndarray, weight: np.ndarray | None, seed: int) -> tuple[np.ndarray, float]:

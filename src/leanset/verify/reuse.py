@@ -24,7 +24,7 @@ from ..config import Config
 from ..load.rows import RowFrame
 from ..models.target import FittedTarget
 from ..scores.cache import library_versions, publish_entry
-from .stats import Reference, Verdict
+from .verdict import Reference, Verdict
 
 logger = logging.getLogger(__name__)
 
@@ -53,7 +53,7 @@ def _folder(frame: RowFrame, config: Config) -> Path | None:
 
 def reused_full_fit(frame: RowFrame, config: Config) -> tuple[Reference | None, dict]:
     """The kept full-data fit of ``frame``'s training rows as a :class:`Reference` for
-    :func:`~leanset.verify.stats.verify`, or None.
+    :func:`~leanset.verify.verdict.verify`, or None.
 
     Returns
     -------
