@@ -28,9 +28,11 @@ FULL_ROWS = {"bagging_fraction": 1.0, "bagging_freq": 0}
 def threshold_config(config: ProxyConfig) -> ProxyConfig:
     """The proxy settings of the threshold-sample passes: ``threshold_rounds`` boosting rounds,
     by default half of ``rounds`` (the paper reads AUM before the network memorises its noise),
-    every tree grown on all rows (:data:`FULL_ROWS`)."""
+    every tree grown on all rows (:data:`FULL_ROWS`, LightGBM's ``gbdt`` proxy only: the linear proxy has no
+    bagging and its estimator refuses these keys)."""
+    full_rows = FULL_ROWS if config.family == "gbdt" else {}
     return config.model_copy(update={"rounds": config.threshold_rounds or max(config.checkpoint_every, config.rounds // 2),
-                                     "params": {**FULL_ROWS, **config.params}})
+                                     "params": {**full_rows, **config.params}})
 
 
 def aum_cutoff(y: np.ndarray, n_classes: int, config: ProxyConfig, seed: int,
