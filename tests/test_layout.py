@@ -13,11 +13,7 @@ SRC = Path(__file__).resolve().parents[1] / "src" / "leanset"
 MODULE_LINES, FUNCTION_LINES, REASON_WINDOW = 400, 60, 40
 
 #: Modules and functions above the limits, with why they are tolerated for now.
-OPEN: dict[str, str] = {
-    "load/table.py": "open, issue 15",
-    "load/table.py:load_table": "open, issue 15",
-    "api.py:RowPruner.fit": "open, issue 15",
-}
+OPEN: dict[str, str] = {}
 
 
 def _modules():

@@ -7,7 +7,7 @@ from sklearn.datasets import load_diabetes, load_wine
 
 from leanset.config import Config
 from leanset.errors import ConfigError
-from leanset.load.table import MAX_AUTO_CLASSES, task
+from leanset.load.checks import MAX_AUTO_CLASSES, task
 
 
 def _config(**sections):

@@ -19,7 +19,6 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 from sklearn.base import BaseEstimator
-from sklearn.utils.validation import check_is_fitted
 
 from .config import Config, load_config, parse_config
 from .errors import ConfigError, LeansetError
@@ -173,27 +172,7 @@ class RowPruner(BaseEstimator):
         from .scores.dynamics import score
         from .select.frame import select_frame
 
-        if y is None:
-            raise PrunerInputError("RowPruner requires y to be passed, but the target y is None")
-        table = to_arrow(X)
-        if table.num_columns == 0:
-            raise PrunerInputError(f"X has 0 feature(s) (shape=({table.num_rows}, 0)) while a minimum of 1 is required.")
-        if table.num_rows < 2:
-            raise PrunerInputError(f"X has {table.num_rows} sample(s); pruning needs rows of at least two classes")
-        label = _column(y, "y")
-        if len(label) != table.num_rows:
-            raise PrunerInputError(f"X has {table.num_rows} rows but y has {len(label)} values")
-        if _LABEL in table.column_names or _GROUPS in table.column_names:
-            raise PrunerInputError(f"X has a column named {_LABEL} or {_GROUPS}; rename it")
-        names = table.column_names
-        table = table.append_column(_LABEL, label)
-        if groups is not None:
-            table = table.append_column(_GROUPS, _column(groups, "groups"))
-        weight = None if sample_weight is None else np.asarray(sample_weight, dtype=np.float64).ravel()
-        if weight is not None and len(weight) != table.num_rows:
-            raise PrunerInputError(f"sample_weight has {len(weight)} values for {table.num_rows} rows")
-        if weight is not None and (np.any(weight < 0) or not np.any(weight > 0)):
-            raise PrunerInputError("sample_weight must be non-negative and not all zero")
+        table, names, weight = _fit_table(X, y, sample_weight, groups)
         config = self._config([_GROUPS] if groups is not None else [])
         if groups is not None:
             config = config.model_copy(update={"input": config.input.model_copy(update={"exclude": [_GROUPS]})})
@@ -328,3 +307,30 @@ def prune(data: Any, label: str | None = None, config: str | Path | dict | Confi
     preflight(cfg, table)
     run_dir = Path(run_stages(cfg, PLAIN, use_cache=cache, table=table))
     return PruneResult(run_dir, json.loads((run_dir / "run.json").read_text()))
+
+
+def _fit_table(X: Any, y: Any, sample_weight: Any, groups: Any) -> tuple[pa.Table, list[str], np.ndarray | None]:
+    """The checked input of :meth:`RowPruner.fit` as one Arrow table (features, label, groups), the feature
+    names and the weights; raises :class:`PrunerInputError` on what scikit-learn's conventions refuse."""
+    if y is None:
+        raise PrunerInputError("RowPruner requires y to be passed, but the target y is None")
+    table = to_arrow(X)
+    if table.num_columns == 0:
+        raise PrunerInputError(f"X has 0 feature(s) (shape=({table.num_rows}, 0)) while a minimum of 1 is required.")
+    if table.num_rows < 2:
+        raise PrunerInputError(f"X has {table.num_rows} sample(s); pruning needs rows of at least two classes")
+    label = _column(y, "y")
+    if len(label) != table.num_rows:
+        raise PrunerInputError(f"X has {table.num_rows} rows but y has {len(label)} values")
+    if _LABEL in table.column_names or _GROUPS in table.column_names:
+        raise PrunerInputError(f"X has a column named {_LABEL} or {_GROUPS}; rename it")
+    names = table.column_names
+    table = table.append_column(_LABEL, label)
+    if groups is not None:
+        table = table.append_column(_GROUPS, _column(groups, "groups"))
+    weight = None if sample_weight is None else np.asarray(sample_weight, dtype=np.float64).ravel()
+    if weight is not None and len(weight) != table.num_rows:
+        raise PrunerInputError(f"sample_weight has {len(weight)} values for {table.num_rows} rows")
+    if weight is not None and (np.any(weight < 0) or not np.any(weight > 0)):
+        raise PrunerInputError("sample_weight must be non-negative and not all zero")
+    return table, names, weight

@@ -1,7 +1,7 @@
 """Load stage: read the table in batches, check it against the config, and build the :class:`RowFrame`.
 
-Row ids, the holdout and the folds come from :mod:`leanset.load.split`; the frame and its lazy
-row view live in :mod:`leanset.load.rows`.
+The checks live in :mod:`leanset.load.checks`; row ids, the holdout and the folds come from
+:mod:`leanset.load.split`; the frame and its lazy row view live in :mod:`leanset.load.rows`.
 """
 
 from __future__ import annotations
@@ -15,230 +15,17 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
-import pyarrow.csv as pacsv
 import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
-from ..config import REGRESSION_METRICS, Config
-from ..errors import ConfigError, InputError
+from ..config import Config
+from .checks import (RESERVED, InputSummary, _check_label_and_id, _count_infinite, _dataset, _feature_columns, _read,
+                     _refuse_infinite, _unreadable, label_bins, task)
 from .memory import release_memory
 from .rows import RowFrame, encode_columns
 from .split import _derive_ids, _row_hashes, split_rows
 
 logger = logging.getLogger(__name__)
-
-#: Columns leanset adds to its outputs; an input column of the same name would be shadowed.
-RESERVED = ("weight",)
-
-
-def _dataset(path: Path, table: pa.Table | None = None) -> ds.Dataset:
-    """The table at ``path`` as an Arrow dataset, refused when it is missing, unreadable or empty;
-    ``table``, an Arrow table in memory, stands in for it when given."""
-    if table is not None:
-        return ds.dataset(table)
-    if not path.exists():
-        raise InputError(f"input.path: {path} not found; point input.path at a parquet file, a folder of parquet files or a CSV file")
-    try:
-        if path.is_file() and path.suffix.lower() in (".csv", ".tsv", ".txt"):
-            parse = pacsv.ParseOptions(delimiter="\t" if path.suffix.lower() == ".tsv" else ",")
-            dataset = ds.dataset(pacsv.read_csv(path, parse_options=parse))
-        else:
-            dataset = ds.dataset(path, format="parquet")
-        if path.is_dir() and not dataset.files:
-            raise InputError(f"input.path: {path} is a folder without parquet files; put the table's files in it or point input.path at the table")
-        rows = dataset.count_rows()
-    except (pa.ArrowInvalid, pa.ArrowTypeError, OSError) as exc:
-        first = str(exc).splitlines()[0]
-        raise InputError(f"{path}: cannot be read as parquet or CSV ({first}); check that the file is complete and in one of those formats") from None
-    if rows == 0:
-        raise InputError(f"{path}: the table has no rows; point input.path at a table that holds data")
-    return dataset
-
-
-def _unreadable(path: Path, exc: Exception) -> InputError:
-    return InputError(f"{path}: cannot be read ({str(exc).splitlines()[0]}); check that the file is complete and not corrupt")
-
-
-def _read(dataset: ds.Dataset, path: Path, columns: list[str] | None = None) -> pa.Table:
-    try:
-        return dataset.to_table(columns=columns)
-    except (pa.ArrowInvalid, OSError) as exc:
-        raise _unreadable(path, exc) from None
-
-
-def _feature_columns(schema: pa.Schema, config: Config, path: Path) -> tuple[list[str], list[str]]:
-    """Return (numeric, categorical) feature names, refusing unsupported types."""
-    inp = config.input
-    if inp.label not in schema.names:
-        raise InputError(f"{path}: label column '{inp.label}' not found (columns: {', '.join(schema.names[:20])}); fix input.label")
-    skip = {inp.label, inp.id, *inp.exclude}
-    names = inp.features if inp.features is not None else [n for n in schema.names if n not in skip]
-    numeric, categorical = [], []
-    for name in names:
-        if name not in schema.names:
-            raise InputError(f"{path}: feature column '{name}' listed in input.features is not in the table")
-        t = schema.field(name).type
-        if pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_boolean(t) or pa.types.is_decimal(t):
-            numeric.append(name)
-        elif pa.types.is_string(t) or pa.types.is_large_string(t) or pa.types.is_dictionary(t):
-            categorical.append(name)
-        else:
-            raise InputError(f"{path}: feature column '{name}' has unsupported type {t}; convert it to a number or a string, or add it to input.exclude")
-    absent = [n for n in inp.segments if n not in schema.names]
-    if absent:
-        raise InputError(f"{path}: segment column '{absent[0]}' listed in input.segments is not in the table; fix input.segments")
-    if not numeric and not categorical:
-        raise InputError(f"{path}: no feature columns besides the label and id; add feature columns or fix input.features")
-    return numeric, categorical
-
-
-def _check_classes(label, config: Config, path: Path) -> None:
-    inp = config.input
-    if config.verify.metric in REGRESSION_METRICS:
-        raise ConfigError(f"verify.metric: {config.verify.metric} is a regression metric but '{inp.label}' holds classes; use a classification metric, or set input.task: regression")
-    t = label.type
-    if pa.types.is_floating(t):
-        vals = label.to_numpy()
-        if not np.all(np.isfinite(vals)) or not np.all(vals == np.round(vals)):
-            raise InputError(f"{path}: label column '{inp.label}' holds continuous values; set input.task: regression, or give it class labels")
-    elif not (pa.types.is_integer(t) or pa.types.is_boolean(t) or pa.types.is_string(t) or pa.types.is_large_string(t) or pa.types.is_dictionary(t)):
-        raise InputError(f"{path}: label column '{inp.label}' has unsupported type {t}; give it string, integer or boolean class labels")
-    counts = pc.value_counts(label.combine_chunks() if not pa.types.is_dictionary(t) else label.cast(pa.string()).combine_chunks())
-    values, ns = counts.field("values").to_pylist(), counts.field("counts").to_numpy()
-    if len(values) < 2:
-        raise InputError(f"{path}: label column '{inp.label}' has a single class ({values[0]!r}); pruning needs at least two classes")
-    need = config.proxy.folds + 1
-    small = [(v, n) for v, n in zip(values, ns) if n < need]
-    if small:
-        v, n = small[0]
-        raise InputError(f"{path}: class {v!r} of '{inp.label}' has {n} rows; it needs at least {need} (1 for the holdout, {config.proxy.folds} for the proxy folds); drop or merge it, or lower proxy.folds")
-
-
-def _check_label_and_id(table: pa.Table, config: Config, path: Path) -> None:
-    inp = config.input
-    if inp.label not in table.column_names:
-        raise InputError(f"{path}: label column '{inp.label}' not found (columns: {', '.join(table.column_names[:20])}); fix input.label")
-    label = table.column(inp.label)
-    if label.null_count:
-        raise InputError(f"{path}: label column '{inp.label}' has {label.null_count} missing values; fill or drop those rows")
-    if task(table, config) == "regression":
-        _check_continuous_label(label, config, path)
-    else:
-        _check_classes(label, config, path)
-    if inp.id is not None:
-        if inp.id not in table.column_names:
-            raise InputError(f"{path}: id column '{inp.id}' not found; fix input.id or remove it to derive row ids")
-        ids = table.column(inp.id)
-        if ids.null_count:
-            raise InputError(f"{path}: id column '{inp.id}' has {ids.null_count} missing values; fill them or remove input.id to derive row ids")
-        dup = pc.value_counts(ids.combine_chunks())
-        repeated = pc.filter(dup.field("values"), pc.greater(dup.field("counts"), 1))
-        if len(repeated):
-            raise InputError(f"{path}: id column '{inp.id}' has {len(repeated)} duplicated values (first: {repeated[0].as_py()!r}); make ids unique or remove input.id to derive row ids")
-    for name in RESERVED:
-        if name in table.column_names and name != inp.label:
-            raise InputError(f"{path}: column '{name}' clashes with the column leanset writes into kept rows; rename it or add it to input.exclude after renaming")
-
-
-#: Label-quantile bins that stand in for classes on a regression table (holdout, folds, quotas).
-LABEL_BINS = 10
-
-
-#: Most distinct values a label of whole numbers may hold to be taken as classes when ``input.task``
-#: is ``auto``; above it the task is ambiguous and the label is refused (common practice, no source:
-#: a class label with more values than this is more often a count or a measurement).
-MAX_AUTO_CLASSES = 50
-
-
-def task(table: pa.Table, config: Config) -> str:
-    """The task of the table's label: ``input.task`` when set, else inferred.
-
-    With ``input.task: auto``, a regression metric (``verify.metric`` rmse, mae or r2) means
-    regression; a float label holding non-integer values means regression; strings, booleans and
-    whole numbers (integers, or floats holding whole numbers) with at most :data:`MAX_AUTO_CLASSES`
-    distinct values mean classification.
-
-    Raises
-    ------
-    ConfigError
-        When a label of whole numbers holds more than :data:`MAX_AUTO_CLASSES` distinct values:
-        the config must say which task it means.
-    """
-    inp = config.input
-    if inp.task != "auto":
-        return inp.task
-    if config.verify.metric in REGRESSION_METRICS:
-        return "regression"
-    label = table.column(inp.label)
-    t = label.type
-    if not (pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t)):
-        return "classification"
-    vals = label.to_numpy().astype(np.float64) if not pa.types.is_decimal(t) else label.cast(pa.float64()).to_numpy()
-    if np.any(np.isfinite(vals) & (vals != np.round(vals))):
-        return "regression"
-    distinct = len(pc.unique(label.combine_chunks()))
-    if distinct > MAX_AUTO_CLASSES:
-        raise ConfigError(f"input.label: '{inp.label}' holds {distinct} distinct whole numbers (more than {MAX_AUTO_CLASSES} "
-                          "for classes by default); set input.task: regression and verify.metric: rmse to predict it as a number, "
-                          "or input.task: classification to keep each value as a class")
-    return "classification"
-
-
-def _check_continuous_label(label, config: Config, path: Path) -> None:
-    t = label.type
-    if not (pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t)):
-        if config.input.task == "auto" and config.verify.metric in REGRESSION_METRICS:
-            raise ConfigError(f"verify.metric: {config.verify.metric} is a regression metric but label column '{config.input.label}' "
-                              f"holds classes (type {t}); use a classification metric such as accuracy, or a numeric label")
-        raise InputError(f"{path}: label column '{config.input.label}' has type {t}; input.task regression needs a numeric label")
-    if not np.all(np.isfinite(label.to_numpy().astype(np.float64))):
-        raise InputError(f"{path}: label column '{config.input.label}' has infinite or NaN values; fill or drop those rows")
-    need = LABEL_BINS * (config.proxy.folds + 1)
-    if len(label) < need:
-        raise InputError(f"{path}: regression label '{config.input.label}' has {len(label)} rows; it needs at least {need} ({LABEL_BINS} label-quantile bins, each split into a holdout and {config.proxy.folds} proxy folds); lower proxy.folds")
-    if config.selection.score in ("confidence", "aleatoric"):
-        raise ConfigError(f"selection.score: {config.selection.score} has no regression analogue; use aum, el2n, forgetting, correctness, variability, oof_loss or oof_margin")
-    metric = config.verify.metric
-    if metric not in REGRESSION_METRICS and "metric" in config.verify.model_fields_set:
-        raise ConfigError(f"verify.metric: {metric} is a classification metric but '{config.input.label}' is a regression label; use rmse, mae or r2")
-
-
-def label_bins(y: np.ndarray, bins: int = LABEL_BINS) -> np.ndarray:
-    """Quantile bin (0..bins-1) of each continuous label value, ties kept together."""
-    ranks = pd.Series(y).rank(method="min").to_numpy()
-    return np.minimum(((ranks - 1) * bins / len(y)).astype(np.int32), bins - 1)
-
-
-class InputSummary(NamedTuple):
-    """What :func:`check_input` learned of the table: enough to check the models' settings."""
-
-    task: str
-    rows: int
-    n_classes: int
-    n_features: int
-    n_categorical: int
-
-
-def _refuse_infinite(counts: dict[str, int], first_row: dict[str, int], path: Path) -> None:
-    """Refuse infinite feature values, naming the first column that holds them and its count."""
-    bad = [name for name, k in counts.items() if k]
-    if bad:
-        name = bad[0]
-        more = f" (and {len(bad) - 1} more columns)" if len(bad) > 1 else ""
-        raise InputError(f"{path}: feature column '{name}' holds {counts[name]} infinite values, the first in row {first_row[name]}{more}; "
-                         f"replace them with NaN (read as missing) or finite numbers, or add '{name}' to input.exclude")
-
-
-def _count_infinite(batch, names: list[str], start: int, counts: dict[str, int], first_row: dict[str, int]) -> None:
-    """Add the infinite values of the float columns ``names`` of ``batch`` (rows from ``start``) to ``counts``."""
-    for name in names:
-        inf = pc.is_inf(batch.column(name))
-        k = pc.sum(inf).as_py() or 0
-        if k and not counts[name]:
-            first_row[name] = start + int(np.flatnonzero(inf.to_numpy(zero_copy_only=False))[0])
-        counts[name] += k
-
-
 def check_input(config: Config, table: pa.Table | None = None) -> InputSummary:
     """Check the table against the config: its schema, label and id columns, and one pass over its
     float feature columns for infinite values (NaN is read as missing; infinity is refused).
@@ -377,11 +164,53 @@ def load_table(config: Config, table: pa.Table | None = None, holdout: bool = Tr
     n, n_features = head.num_rows, len(numeric) + len(categorical)
     in_memory = n * n_features * 4 <= ex.feature_memory_mb * 2**20
     source = TableSource(dataset, path, None, ex.batch_rows)
-    hashes, uniques, cat_cols = [], {name: set() for name in categorical}, {name: [] for name in categorical}
-    # numeric features are written into the matrix batch by batch: no list of blocks, no concatenated copy
-    X = np.empty((n, n_features), dtype=np.float32) if in_memory else None
-    feature_hashes = []
-    floats = [c for c in numeric if pa.types.is_floating(dataset.schema.field(c).type)]
+    scan = _scan(source, dataset.schema, used, numeric, categorical, n if in_memory else None)
+    release_memory()  # the pass's decoded row groups and batch frames
+    _refuse_infinite(scan.inf_counts, scan.inf_first, path)
+    digest = hashlib.sha256(str(pa.schema([dataset.schema.field(c) for c in used])).encode())
+    digest.update(scan.content)
+    if inp.id is None:
+        ids = source.row_id = _derive_ids(scan.content)
+    else:
+        ids = head.column(inp.id)
+        if not (pa.types.is_string(ids.type) or pa.types.is_large_string(ids.type)):
+            ids = pa.chunked_array([pa.array(ids.to_pandas().astype(str), pa.string())])
+    row_id = pd.arrays.ArrowStringArray(ids.cast(pa.string()))
+    kind, classes, y, bins = _labels(head, config)
+    logger.info("load: %d rows, %d features (%d categorical), %s task, features %s", n, n_features, len(categorical),
+                kind, "in memory" if in_memory else "read in batches")
+    is_holdout, fold = split_rows(row_id, y if bins is None else bins, config.holdout.fraction if holdout else 0.0,
+                                  config.proxy.folds, config.seed)
+    release_memory()
+    return RowFrame(
+        row_id=row_id, y=y, classes=classes, X=scan.X, feature_names=numeric + categorical,
+        categorical=list(range(len(numeric), len(numeric) + len(categorical))),
+        categories=scan.categories, holdout=is_holdout, fold=fold, fingerprint=digest.hexdigest()[:32], source=source,
+        feature_hash=scan.feature_hash, segments=_segment_codes(head, config.input.segments, path),
+        segment_names=tuple(config.input.segments), task=kind, bins=bins,
+    )
+
+
+class _Scan(NamedTuple):
+    """What one pass over the feature columns yields."""
+
+    X: np.ndarray | None
+    content: np.ndarray
+    feature_hash: np.ndarray
+    categories: dict[str, list]
+    inf_counts: dict[str, int]
+    inf_first: dict[str, int]
+
+
+def _scan(source: TableSource, schema: pa.Schema, used: list[str], numeric: list[str], categorical: list[str],
+          rows_in_memory: int | None) -> _Scan:
+    """One pass in record batches: row and feature hashes, category values, infinite-value counts, and the
+    float32 matrix when ``rows_in_memory`` is given (numeric columns written batch by batch, no concatenated
+    copy; categorical codes filled in at the end, once every category is known)."""
+    hashes, feature_hashes = [], []
+    uniques, cat_cols = {name: set() for name in categorical}, {name: [] for name in categorical}
+    X = None if rows_in_memory is None else np.empty((rows_in_memory, len(numeric) + len(categorical)), dtype=np.float32)
+    floats = [c for c in numeric if pa.types.is_floating(schema.field(c).type)]
     inf_counts, inf_first, at = dict.fromkeys(floats, 0), {}, 0
     for batch in source.batches(used):
         _count_infinite(batch, floats, at, inf_counts, inf_first)
@@ -394,51 +223,26 @@ def load_table(config: Config, table: pa.Table | None = None, holdout: bool = Tr
         feature_hashes.append(_row_hashes(pd.concat([pd.DataFrame(block, index=df.index), cats], axis=1)))
         for name in categorical:
             uniques[name].update(cats[name].dropna().unique().tolist())
-            if in_memory:
+            if X is not None:
                 cat_cols[name].append(cats[name])
-        if in_memory:
+        if X is not None:
             X[at - batch.num_rows:at, :len(numeric)] = block
-    release_memory()  # the pass's decoded row groups and batch frames
-    _refuse_infinite(inf_counts, inf_first, path)
-    content = np.concatenate(hashes) if hashes else np.empty(0, np.uint64)
-    schema = pa.schema([dataset.schema.field(c) for c in used])
-    digest = hashlib.sha256(str(schema).encode())
-    digest.update(content)
-    fingerprint = digest.hexdigest()[:32]
     categories = {name: sorted(uniques[name]) for name in categorical}
-    if in_memory and categorical:
+    if X is not None and categorical:
         cats = pd.DataFrame({name: pd.concat(cat_cols[name], ignore_index=True) for name in categorical})
         X[:, len(numeric):] = encode_columns(cats, [], categorical, categories)
-    if inp.id is None:
-        ids = source.row_id = _derive_ids(content)
-    else:
-        ids = head.column(inp.id)
-        if not (pa.types.is_string(ids.type) or pa.types.is_large_string(ids.type)):
-            ids = pa.chunked_array([pa.array(ids.to_pandas().astype(str), pa.string())])
-    row_id = pd.arrays.ArrowStringArray(ids.cast(pa.string()))
+    empty = np.empty(0, np.uint64)
+    return _Scan(X, np.concatenate(hashes) if hashes else empty,
+                 np.concatenate(feature_hashes) if feature_hashes else empty, categories, inf_counts, inf_first)
 
-    label = head.column(inp.label).to_pandas()
+
+def _labels(head: pa.Table, config: Config) -> tuple[str, list, np.ndarray, np.ndarray | None]:
+    """The task, the classes (none for regression), the label as class codes or floats, and the label bins that
+    stratify a regression table's splits."""
+    label = head.column(config.input.label).to_pandas()
     kind = task(head, config)
     if kind == "regression":
-        classes, y = [], label.to_numpy(np.float64)
-        bins = label_bins(y)
-    else:
-        classes = sorted(label.unique().tolist(), key=lambda v: (str(type(v)), v))
-        y = pd.Categorical(label, categories=classes).codes.astype(np.int32)
-        bins = None
-
-    logger.info("load: %d rows, %d features (%d categorical), %s task, features %s", n, n_features, len(categorical),
-                kind, "in memory" if in_memory else "read in batches")
-    holdout, fold = split_rows(row_id, y if bins is None else bins, config.holdout.fraction if holdout else 0.0,
-                               config.proxy.folds, config.seed)
-    release_memory()
-    return RowFrame(
-        row_id=row_id, y=y, classes=classes, X=X,
-        feature_names=numeric + categorical,
-        categorical=list(range(len(numeric), len(numeric) + len(categorical))),
-        categories=categories, holdout=holdout, fold=fold,
-        fingerprint=fingerprint, source=source,
-        feature_hash=np.concatenate(feature_hashes) if feature_hashes else np.empty(0, np.uint64),
-        segments=_segment_codes(head, config.input.segments, path), segment_names=tuple(config.input.segments),
-        task=kind, bins=bins,
-    )
+        y = label.to_numpy(np.float64)
+        return kind, [], y, label_bins(y)
+    classes = sorted(label.unique().tolist(), key=lambda v: (str(type(v)), v))
+    return kind, classes, pd.Categorical(label, categories=classes).codes.astype(np.int32), None

@@ -9,7 +9,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ..errors import ConfigError, LeansetError
-from ..load.table import _dataset
+from ..load.checks import _dataset
 from ..report.html import render_html, review_rows
 from .reader import Store, published_runs
 
