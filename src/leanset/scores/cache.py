@@ -16,7 +16,6 @@ import logging
 import os
 import shutil
 from dataclasses import dataclass
-from importlib import metadata
 from pathlib import Path
 from typing import Callable
 
@@ -25,6 +24,7 @@ import pyarrow.parquet as pq
 
 from ..config import Config
 from ..load.rows import RowFrame
+from ..versions import package_versions
 from .dynamics import Scores
 from .labels import wants_threshold_samples
 
@@ -48,13 +48,7 @@ class StoredProxy:
 
 def library_versions() -> dict[str, str]:
     """Versions of the libraries whose version can change a score or a fitted model."""
-    versions = {}
-    for name in _LIBRARIES:
-        try:
-            versions[name] = metadata.version(name)
-        except metadata.PackageNotFoundError:
-            versions[name] = "absent"
-    return versions
+    return package_versions(_LIBRARIES)
 
 
 def publish_entry(folder: Path, fill: Callable[[Path], None]) -> None:

@@ -18,7 +18,6 @@ import platform
 import shutil
 import time
 from datetime import datetime, timezone
-from importlib import metadata
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Iterator
 
@@ -26,11 +25,12 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from .lineage import CarriedVerdict, ParentRun, churn, lineage
-from .reader import published_runs
 from ..config import SCORE_NAMES, Config
 from ..errors import StoreError
 from ..report.ledger import cost_ledger
+from ..versions import package_versions
+from .lineage import CarriedVerdict, ParentRun, churn, lineage
+from .reader import published_runs
 
 logger = logging.getLogger(__name__)
 
@@ -84,13 +84,7 @@ def store_lock(store: Path, wait: float = 0.0) -> Iterator[None]:
 
 def versions() -> dict[str, str]:
     """Versions of Python and of the packages that decide a run's results."""
-    out = {"python": platform.python_version()}
-    for name in PACKAGES:
-        try:
-            out[name] = metadata.version(name)
-        except metadata.PackageNotFoundError:
-            out[name] = "absent"
-    return out
+    return {"python": platform.python_version(), **package_versions(PACKAGES)}
 
 
 def new_run_id(config: Config, fingerprint: str) -> str:
