@@ -23,7 +23,7 @@ import numpy as np
 from scipy import stats
 
 from leanset.config import SCORE_NAMES, load_config
-from leanset.select.rules import select_frame
+from leanset.select.frame import select_frame
 from leanset.load.table import load_table
 
 ROOT = Path(__file__).resolve().parents[1]
