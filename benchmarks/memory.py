@@ -52,6 +52,7 @@ def by_stage(path: Path) -> None:
     remaining RSS (MiB); the high-water mark is reset between stages (``/proc/self/clear_refs``)."""
     from leanset.config import load_config
     from leanset.flows import PLAIN
+    from leanset.load.memory import release_memory
     from leanset.preflight import preflight
     from leanset.store.publish import write_run
 
@@ -74,7 +75,9 @@ def by_stage(path: Path) -> None:
     scores = stage("score", PLAIN.score, frame, config, False)
     scores.info["agreement"] = stage("agreement", PLAIN.agreement, frame, scores, config)
     selection = stage("select", PLAIN.select, frame, scores, config)
-    verdict = stage("verify", PLAIN.verify, frame, selection, config, None)
+    verdict, _ = stage("verify", PLAIN.verify, frame, selection, config, None)
+    frame.release_features()  # as the run does: every model is trained, the write stage reads no features
+    release_memory()
     stage("write", write_run, frame, scores, selection, verdict, config, {})
 
 
