@@ -304,3 +304,24 @@ def test_folder_of_parquet_files_gives_the_same_rows_as_one_file(tmp_path):
     order_one, order_many = np.argsort(one.row_id), np.argsort(many.row_id)
     np.testing.assert_array_equal(many.X[order_many], one.X[order_one])
     np.testing.assert_array_equal(many.y[order_many], one.y[order_one])
+
+
+def test_take_reads_the_rows_pyarrow_takes_in_any_order(tmp_path):
+    """``TableSource.take`` reads only the row groups that hold the rows; the rows must be those
+    pyarrow's own ``Dataset.take`` returns, in the order asked, repeats and all."""
+    import pyarrow.dataset as ds
+
+    from leanset.load.table import TableSource
+
+    d = wine()
+    folder = tmp_path / "parts"
+    folder.mkdir()
+    for k, part in enumerate(np.array_split(np.arange(len(d)), 3)):
+        pq.write_table(pa.Table.from_pandas(d.iloc[part], preserve_index=False), folder / f"part-{k}.parquet", row_group_size=20)
+    dataset = ds.dataset(folder, format="parquet")
+    source = TableSource(dataset, folder, None, batch_rows=16)
+    rng = np.random.default_rng(0)
+    for rows in (rng.integers(0, len(d), 25), np.array([len(d) - 1, 0, 0, 59, 60]), np.arange(len(d))[::-1], np.array([], int)):
+        assert source.take(rows).equals(dataset.take(pa.array(rows, pa.int64())))  # pyarrow's Dataset.take
+    with pytest.raises(IndexError):
+        source.take([len(d)])

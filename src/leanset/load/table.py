@@ -90,15 +90,38 @@ class TableSource:
         return _read(self.dataset, self.path, [name]).column(name)
 
     def take(self, indices) -> pa.Table:
-        """The rows at ``indices`` (positions in table order), every column."""
-        indices = pa.array(np.asarray(indices, dtype=np.int64))
+        """The rows at ``indices`` (positions in table order, any order), every column.
+
+        Of parquet files, only the row groups that hold the rows are read (a few rows to show
+        do not cost a read of the whole table)."""
+        indices = np.asarray(indices, dtype=np.int64)
         try:
-            table = self.dataset.take(indices)
+            table = (self._take_groups(indices) if isinstance(self.dataset, ds.FileSystemDataset)
+                     else self.dataset.take(pa.array(indices)))
         except (pa.ArrowInvalid, OSError) as exc:
             raise _unreadable(self.path, exc) from None
         if self.row_id is not None:
-            table = table.append_column("row_id", self.row_id.take(indices))
+            table = table.append_column("row_id", self.row_id.take(pa.array(indices)))
         return table
+
+    def _take_groups(self, indices: np.ndarray) -> pa.Table:
+        """:meth:`take` of the parquet files' rows, reading only the row groups that hold them, one at a time."""
+        fs, schema = self.dataset.filesystem, self.dataset.schema
+        metas = [(file, pq.read_metadata(file, filesystem=fs)) for file in self.dataset.files]
+        groups = [(file, g, meta.row_group(g).num_rows) for file, meta in metas for g in range(meta.num_row_groups)]
+        starts = np.cumsum([0] + [m for _, _, m in groups])
+        if len(indices) and (indices.min() < 0 or indices.max() >= starts[-1]):
+            raise IndexError(f"row positions out of range: the table has {starts[-1]} rows")
+        order = np.argsort(indices, kind="stable")
+        of = np.searchsorted(starts, indices[order], side="right") - 1
+        pieces = [schema.empty_table()]
+        for g in np.unique(of):
+            file, group, _ = groups[g]
+            rows = pq.ParquetFile(file, filesystem=fs).read_row_group(group, use_threads=False)
+            pieces.append(rows.take(pa.array(indices[order][of == g] - starts[g])).select(schema.names).cast(schema))
+        unsort = np.empty_like(order)
+        unsort[order] = np.arange(len(order))
+        return pa.concat_tables(pieces).take(pa.array(unsort))
 
     @property
     def schema(self) -> pa.Schema:
