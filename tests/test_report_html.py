@@ -234,3 +234,26 @@ def test_report_command_rebuilds_and_lists(run_dir):
     assert [r["row_id"] for r in json.loads(listed.stdout)] == expected
     bad = cli("report", run_dir.name, "--list", "everything", "--store", str(store))
     assert bad.exit_code == 2 and "--list everything" in bad.output
+
+
+def test_coded_columns_count_as_numpy_unique():
+    """The report counts string columns through codes, not a Python object per row; its values and
+    counts must be those of ``np.unique`` over the column's values as ``str`` (NumPy)."""
+    import pyarrow as pa
+
+    from leanset.report.coded import Coded
+
+    columns = [pa.chunked_array([["keep", "drop", None], ["holdout", "keep"]]),
+               pa.chunked_array([[3, None, 1], [3, 2]]), pa.array([0.5, 1.0, 0.5]), ["b", "a", "b"]]
+    for column in columns:
+        values = column.to_numpy(zero_copy_only=False) if hasattr(column, "to_numpy") else column
+        names = np.asarray(values, dtype=object).astype(str)
+        coded = Coded.of(column)
+        expect = np.unique(names, return_counts=True)  # NumPy
+        for got, want in zip(coded.counts(), expect):
+            np.testing.assert_array_equal(got, want)
+        np.testing.assert_array_equal(coded.values[coded.codes], names)
+        np.testing.assert_array_equal(coded.eq(names[0]), names == names[0])
+        rows = np.array([True, False, True] + [False] * (len(names) - 3))
+        for got, want in zip(coded.counts(rows), np.unique(names[rows], return_counts=True)):
+            np.testing.assert_array_equal(got, want)

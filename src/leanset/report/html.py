@@ -21,6 +21,7 @@ from ..config import REGRESSION_METRICS, SCORE_NAMES
 from ..difficulty import DIFFICULTY_SIGN
 from ..errors import LeansetError
 from ..reasons import REASONS
+from .coded import Coded
 from .charts import (Charts, bars_chart, calibration_name, churn_chart, cost_chart, frontier_chart, metrics_chart,
                      reasons_chart, scores_chart, verdict_chart)
 from .format import interval, number, seconds, share, signed
@@ -100,12 +101,12 @@ def _cost(run, draw) -> dict[str, Any] | None:
     return {"c": cost, "stages": stages, "fits": fits, "chart": cost_chart(stages, fits, draw) if stages else None}
 
 
-def _group_rows(names, labels, train, kept, weight, weighted: bool) -> list[dict]:
+def _group_rows(names, labels: Coded, train, kept, weight, weighted: bool) -> list[dict]:
     rows = []
     nb, nk = max(int(train.sum()), 1), max(int(kept.sum()), 1)
     wk = float(weight[kept].sum()) or 1.0
     for n in names:
-        member = labels == n
+        member = labels.eq(n)
         b, k = int((member & train).sum()), int((member & kept).sum())
         w = weight[member & kept]
         rows.append({"name": str(n), "before": b, "share_before": b / nb, "after": k, "share_after": k / nk,
@@ -115,26 +116,25 @@ def _group_rows(names, labels, train, kept, weight, weighted: bool) -> list[dict
 
 
 def _composition(run, manifest, segments, draw) -> dict[str, Any]:
-    decision = manifest.column("decision").to_numpy(zero_copy_only=False)
-    train, kept = decision != "holdout", decision == "keep"
+    decision = Coded.of(manifest.column("decision"))
+    train, kept = ~decision.eq("holdout"), decision.eq("keep")
     weight = np.nan_to_num(manifest.column("weight").to_numpy(zero_copy_only=False).astype(np.float64))
     weighted = run["config"]["selection"].get("weights") == "class_prior"
     groups = []
     if not _regression(run):
-        groups.append(("class", manifest.column("label").to_numpy(zero_copy_only=False).astype(str), True))
+        groups.append(("class", Coded.of(manifest.column("label")), True))
     for name, values in (segments or {}).items():
-        if len(values) == len(decision):  # one value per input row
-            groups.append((f"segment {name}", np.asarray(values, dtype=object).astype(str), True))
-        else:  # the kept rows' values only (a rebuilt page when the input table is gone)
-            groups.append((f"segment {name}", np.asarray(values, dtype=object).astype(str), False))
+        coded = Coded.of(values)
+        # one value per input row, or the kept rows' values only (a rebuilt page when the input table is gone)
+        groups.append((f"segment {name}", coded, len(coded) == len(decision)))
     out = []
     for title, labels, full in groups:
         if not full:
-            names, counts = np.unique(labels, return_counts=True)
+            names, counts = labels.counts()
             out.append({"title": title, "partial": True,
                         "rows": [{"name": str(n), "after": int(k), "share_after": k / max(counts.sum(), 1)} for n, k in zip(names, counts)]})
             continue
-        names = np.unique(labels[train])
+        names = labels.counts(train)[0]
         rows = _group_rows(names, labels, train, kept, weight, weighted and title == "class")
         item = {"title": title, "partial": False, "rows": rows, "too_many": len(names) > 40}
         if not item["too_many"]:
@@ -152,35 +152,34 @@ def _score_view(run, manifest) -> dict[str, Any]:
         return {"name": name, "classes": []}
     sign = DIFFICULTY_SIGN.get(name, 1)
     values = manifest.column(name).to_numpy(zero_copy_only=False).astype(np.float64)
-    decision = manifest.column("decision").to_numpy(zero_copy_only=False)
-    reason = manifest.column("reason").to_numpy(zero_copy_only=False)
-    label = manifest.column("label").to_numpy(zero_copy_only=False).astype(str)
+    decision = Coded.of(manifest.column("decision"))
+    keep, drop = decision.eq("keep"), decision.eq("drop")
+    reason = Coded.of(manifest.column("reason"))
     pooled = _regression(run)
-    if pooled:  # strata and hard cuts are per label bin, which the manifest does not record: one panel, no edges
-        label = np.full(len(label), "all rows")
-    stratum = manifest.column("stratum").to_numpy(zero_copy_only=False)
-    stratum = np.where(np.isnan(stratum.astype(np.float64)), -1, stratum).astype(np.int64)
-    train = (decision != "holdout") & np.isfinite(values)
+    # strata and hard cuts are per label bin on a regression table, which the manifest does not record: one panel, no edges
+    label = (Coded(np.zeros(len(values), np.int8), np.array(["all rows"])) if pooled
+             else Coded.of(manifest.column("label")))
+    has_stratum = manifest.column("stratum").fill_null(-1).to_numpy() >= 0
+    train = ~decision.eq("holdout") & np.isfinite(values)
     label_errors = (run.get("scores") or {}).get("label_errors") or {}
     cutoffs = label_errors.get("cutoffs") or []
     suspect_cut = float(np.mean(cutoffs)) if cutoffs and name == "aum" else None
     classes = []
-    for c in np.unique(label[train]):
-        m = train & (label == c)
+    for c in label.counts(train)[0]:
+        m = train & label.eq(c)
         d = values[m]
-        rest = m & (stratum >= 0)
+        rest = m & has_stratum
         edges, span = [], None
         if sel.get("strategy") == "stratified" and rest.any() and not pooled:
             lo, hi = np.min(sign * values[rest]), np.max(sign * values[rest])
             bounds = sorted(float(sign * e) for e in np.linspace(lo, hi, int(sel.get("strata", 1)) + 1))
             edges, span = bounds[1:-1], (bounds[0], bounds[-1], (bounds[-1] - bounds[0]) / max(len(bounds) - 1, 1))
-        cut_rows = m & (reason == "drop:hard_cut") & (not pooled)
+        cut_rows = m & reason.eq("drop:hard_cut") & (not pooled)
         hard_cut = float(sign * np.min(sign * values[cut_rows])) if cut_rows.any() else None
-        by_reason = {r: int(k) for r, k in zip(*np.unique(reason[m], return_counts=True))}
-        classes.append({"name": str(c), "rows": int(m.sum()), "kept": int((m & (decision == "keep")).sum()),
+        by_reason = {str(r): int(k) for r, k in zip(*reason.counts(m))}
+        classes.append({"name": str(c), "rows": int(m.sum()), "kept": int((m & keep).sum()),
                         "low": float(d.min()), "high": float(d.max()), "edges": edges, "span": span, "hard_cut": hard_cut,
-                        "by_reason": by_reason, "keep_values": values[m & (decision == "keep")],
-                        "drop_values": values[m & (decision == "drop")]})
+                        "by_reason": by_reason, "keep_values": values[m & keep], "drop_values": values[m & drop]})
     return {"name": name, "classes": classes, "suspect_cut": suspect_cut, "cutoffs": cutoffs,
             "higher_is_harder": sign > 0, "strategy": sel.get("strategy"), "hard_cut_share": sel.get("hard_cut"),
             "strata": sel.get("strata")}
@@ -199,18 +198,18 @@ def _scores(run, manifest, draw) -> dict[str, Any]:
 
 def _review(run, manifest, rows: Callable | None, store_hint: str) -> dict[str, Any]:
     """A sample of suspected label errors (most suspicious first) and of conflicting duplicates."""
-    decision = manifest.column("decision").to_numpy(zero_copy_only=False)
+    train = _training(manifest)
     score_cols = [n for n in SCORE_NAMES if n in manifest.column_names]
     lists = []
     if "suspect_label" in manifest.column_names:
         sus = np.asarray(manifest.column("suspect_label").fill_null(False).to_numpy(zero_copy_only=False), bool)
-        idx = np.flatnonzero(sus & (decision != "holdout"))
+        idx = np.flatnonzero(sus & train)
         if "aum" in manifest.column_names and len(idx):
             idx = idx[np.argsort(manifest.column("aum").to_numpy(zero_copy_only=False)[idx], kind="stable")]
         lists.append(("suspect", "suspected label errors", "lowest AUM first", idx))
     if "conflict" in manifest.column_names:
         con = np.asarray(manifest.column("conflict").fill_null(False).to_numpy(zero_copy_only=False), bool)
-        idx = np.flatnonzero(con & (decision != "holdout"))
+        idx = np.flatnonzero(con & train)
         lists.append(("conflict", "conflicting duplicates (same features, another label)", "in table order", idx))
     out = []
     for key, title, order, idx in lists:
@@ -239,15 +238,19 @@ def _review(run, manifest, rows: Callable | None, store_hint: str) -> dict[str, 
 def review_rows(manifest, which: str):
     """Every training row to review: ``suspect`` (suspected label errors, lowest AUM first) or
     ``conflict`` (rows sharing their features with a row of another label), as a manifest slice."""
-    decision = manifest.column("decision").to_numpy(zero_copy_only=False)
     column = "suspect_label" if which == "suspect" else "conflict"
     if column not in manifest.column_names:
         return manifest.slice(0, 0)
     flag = np.asarray(manifest.column(column).fill_null(False).to_numpy(zero_copy_only=False), bool)
-    idx = np.flatnonzero(flag & (decision != "holdout"))
+    idx = np.flatnonzero(flag & _training(manifest))
     if which == "suspect" and "aum" in manifest.column_names and len(idx):
         idx = idx[np.argsort(manifest.column("aum").to_numpy(zero_copy_only=False)[idx], kind="stable")]
     return manifest.take(idx)
+
+
+def _training(manifest) -> np.ndarray:
+    """Mask of the manifest's training rows (decision keep or drop)."""
+    return ~Coded.of(manifest.column("decision")).eq("holdout")
 
 
 def _churn(run, history, draw) -> dict[str, Any]:
@@ -280,10 +283,8 @@ def _agreement(run) -> dict[str, Any]:
 
 
 def _reasons(manifest, draw) -> dict[str, Any]:
-    decision = manifest.column("decision").to_numpy(zero_copy_only=False)
-    reason = manifest.column("reason").to_numpy(zero_copy_only=False)
-    codes, counts = np.unique(reason, return_counts=True)
-    total = max(int((decision != "holdout").sum()), 1)
+    codes, counts = Coded.of(manifest.column("reason")).counts()
+    total = max(int(_training(manifest).sum()), 1)
     rows = [{"code": str(c), "rows": int(k), "share": (k / total if c != "holdout" else None),
              "meaning": REASONS.get(str(c), "")} for c, k in sorted(zip(codes, counts), key=lambda t: (t[0] == "holdout", -t[1]))]
     return {"rows": rows, "chart": reasons_chart(rows, draw)}
@@ -305,15 +306,15 @@ def _yaml(data) -> str:
 def _headline(run, manifest) -> dict[str, Any]:
     """The four questions first: did it pass, what did it cost and save, what was dropped and why, what to review."""
     c, v = run["counts"], run["verdict"]
-    reason = manifest.column("reason").to_numpy(zero_copy_only=False)
-    decision = manifest.column("decision").to_numpy(zero_copy_only=False)
-    codes, counts = np.unique(reason[decision == "drop"], return_counts=True)
+    decision = Coded.of(manifest.column("decision"))
+    codes, counts = Coded.of(manifest.column("reason")).counts(decision.eq("drop"))
     drops = sorted(({"code": str(k), "rows": int(n)} for k, n in zip(codes, counts)), key=lambda d: -d["rows"])
+    train = ~decision.eq("holdout")
     sus = conflict = 0
     if "suspect_label" in manifest.column_names:
-        sus = int(np.asarray(manifest.column("suspect_label").fill_null(False).to_numpy(zero_copy_only=False), bool)[decision != "holdout"].sum())
+        sus = int(np.asarray(manifest.column("suspect_label").fill_null(False).to_numpy(zero_copy_only=False), bool)[train].sum())
     if "conflict" in manifest.column_names:
-        conflict = int(np.asarray(manifest.column("conflict").fill_null(False).to_numpy(zero_copy_only=False), bool)[decision != "holdout"].sum())
+        conflict = int(np.asarray(manifest.column("conflict").fill_null(False).to_numpy(zero_copy_only=False), bool)[train].sum())
     return {"status": v["status"], "kept_share": c["kept"] / max(c["train"], 1), "drops": drops,
             "suspects": sus, "conflicts": conflict, "cost": run.get("cost"), "speedup": v.get("speedup"),
             "train_seconds": v.get("train_seconds") or {}}
