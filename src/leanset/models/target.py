@@ -30,8 +30,14 @@ class FittedTarget:
     booster: lgb.Booster | None = None
     estimator: Any = None
 
-    def predict_proba(self, X: np.ndarray) -> np.ndarray:
-        """Class probabilities, shape (n, n_classes), columns in class-code order; predicted values (n,) for regression."""
+    def predict_proba(self, X: np.ndarray | RowView) -> np.ndarray:
+        """Class probabilities, shape (n, n_classes), columns in class-code order; predicted values (n,) for regression.
+
+        A :class:`~leanset.load.rows.RowView` is predicted batch by batch, never gathered whole
+        (each row's prediction depends on that row only)."""
+        if isinstance(X, RowView):
+            parts = [self.predict_proba(block) for _, block in X.batches()]
+            return np.concatenate(parts) if parts else self.predict_proba(np.asarray(X))
         if self.n_classes == 0:
             return (self.booster if self.booster is not None else self.estimator).predict(X).astype(np.float64)
         if self.booster is not None:

@@ -72,7 +72,7 @@ def reused_full_fit(frame: RowFrame, config: Config) -> tuple[Reference | None, 
         return None, {"reused": False}
     model = FittedTarget(len(frame.classes), booster=booster)
     reference = Reference(model=model, seconds=float(meta["seconds"]), X=frame.feature_rows(frame.train),
-                          X_hold=frame.features(np.flatnonzero(frame.holdout)))
+                          X_hold=frame.feature_rows(np.flatnonzero(frame.holdout)))
     logger.info("verify: full-data fit reused from the cache (key %s, made %s)", folder.name, meta["fitted_at"])
     return reference, {"reused": True, "key": folder.name, "seconds": float(meta["seconds"]), "fitted_at": meta["fitted_at"]}
 
