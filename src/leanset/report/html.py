@@ -342,7 +342,7 @@ def render_html(run: dict[str, Any], manifest, segments: dict[str, Any] | None =
         The run's manifest.
     segments : dict, optional
         Segment column name → its value for every input row, in manifest order (or, on a rebuilt
-        page whose input table is gone, for the kept rows only).
+        page whose input table is gone, for the kept rows only), as a pyarrow array or any array-like.
     rows : callable, optional
         Positions in the input table → a pyarrow Table of those rows' original columns, for the
         features of the rows to review; None shows their manifest columns only.

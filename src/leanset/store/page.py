@@ -53,11 +53,11 @@ def build_report(run_dir: str | Path, out: str | Path | None = None) -> Path:
     source = _input_rows(run, manifest)
     if source is not None:
         table = source.to_table(columns=names)
-        segments = {n: table.column(n).to_numpy(zero_copy_only=False) for n in names}
+        segments = {n: table.column(n) for n in names}
         rows = source.take
     else:
         kept = pq.read_table(run_dir / "kept.parquet", columns=names) if names else None
-        segments = {n: kept.column(n).to_numpy(zero_copy_only=False) for n in names} if kept is not None else None
+        segments = {n: kept.column(n) for n in names} if kept is not None else None
         rows = None
     store = run_dir.parent.parent
     history = published_runs(store)

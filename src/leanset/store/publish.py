@@ -28,6 +28,7 @@ import pyarrow.parquet as pq
 
 from ..config import SCORE_NAMES, Config
 from ..errors import StoreError
+from ..load.memory import release_memory
 from ..report.ledger import cost_ledger
 from ..versions import package_versions
 from .lineage import CarriedVerdict, ParentRun, churn, lineage
@@ -223,10 +224,13 @@ def _write_locked(frame, scores, selection, verdict, config, timings, parent, ex
     tmp = runs / f".tmp-{run_id}"
     tmp.mkdir()
     try:
+        # kept rows first, so that their pass over the table does not hold the manifest as well
+        _write_kept(frame, selection, tmp / "kept.parquet", config.execution.batch_rows)
+        release_memory()
         manifest = manifest_table(frame, scores, selection)
         counts = check_conservation(manifest, len(frame.row_id))
         pq.write_table(manifest, tmp / "manifest.parquet", row_group_size=config.execution.batch_rows)
-        _write_kept(frame, selection, tmp / "kept.parquet", config.execution.batch_rows)
+        release_memory()
         _write_models(tmp / "models", scores, verdict)
         run = _run_record(run_id, frame, scores, selection, verdict, config, timings, parent, manifest, counts, previous)
         run.update(extra)
@@ -290,5 +294,5 @@ def _write_report(path: Path, run: dict[str, Any], manifest: pa.Table, frame: Ro
     """report.html of the run, from its records, the segment columns and the input rows to review."""
     from ..report.html import render_html
 
-    segments = {name: frame.source.column(name).to_numpy(zero_copy_only=False) for name in config.input.segments}
+    segments = {name: frame.source.column(name) for name in config.input.segments}
     path.write_text(render_html(run, manifest, segments, rows=frame.source.take, history=previous, store=config.store))
