@@ -99,6 +99,7 @@ def test_oof_loss_is_sklearn_squared_error_per_row(tmp_path, family):
     np.testing.assert_allclose(loss, per_row, rtol=1e-12, atol=1e-9)
     assert loss.mean() == pytest.approx(metrics.mean_squared_error(y, oof), rel=1e-12)
     np.testing.assert_allclose(s.table["oof_margin"].to_numpy(), -np.abs(oof - y), atol=1e-9)
+    assert s.table["oof_entropy"].isna().all()  # no label-free analogue for a regression target
     # the proxy learned something: its out-of-fold R² beats the constant model's 0 (sklearn.metrics.r2_score)
     assert metrics.r2_score(y, oof) > 0.2
     assert s.table["suspect_label"].isna().all()  # no threshold samples without classes

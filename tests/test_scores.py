@@ -16,6 +16,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from scipy import stats
 from sklearn.datasets import load_breast_cancer, load_digits, load_wine
 from sklearn.metrics import log_loss, roc_auc_score
 
@@ -301,6 +302,9 @@ def test_oof_scores_match_sklearn_and_direct_computation(tmp_path, make, family)
     masked[np.arange(len(y)), y] = -np.inf
     np.testing.assert_allclose(s.table["oof_margin"].to_numpy(), oof[np.arange(len(y)), y] - masked.max(axis=1),
                                rtol=0, atol=1e-12)
+    # entropy of the out-of-fold prediction in units of log K: scipy.stats.entropy (Coleman et al., ICLR 2020,
+    # use the entropy of a proxy's prediction); it does not depend on the label
+    np.testing.assert_allclose(s.table["oof_entropy"].to_numpy(), stats.entropy(oof, axis=1) / np.log(C), rtol=1e-9, atol=1e-12)
     # the fold-0 rows are really out of fold for proxy 0: its loss there exceeds its loss on the
     # rows it trained on (a fitted model's training loss is below its held-out loss; common
     # practice, no source)

@@ -25,7 +25,7 @@ from leanset.config import SelectionConfig, TargetConfig, VerifyConfig
 from leanset.errors import ConfigError
 from leanset.select.rules import select
 from leanset.models.target import FittedTarget, fit_target
-from leanset.verify.stats import mcnemar_exact, metric_value, paired_bootstrap, recall_drop, resampled_metric
+from leanset.verify.stats import mcnemar_exact, metric_interval, metric_value, paired_bootstrap, recall_drop, resampled_metric
 from leanset.verify.verdict import verify_rows
 
 # The module whose ``fit_target`` every fit of ``verify_rows`` goes through, for monkeypatching.
@@ -470,3 +470,16 @@ def test_weights_reach_sklearn_estimator():
     np.testing.assert_allclose(v.models["kept"].estimator.coef_, ref.coef_, rtol=1e-6, atol=1e-8)
     unweighted = LogisticRegression(C=0.5, max_iter=2000, random_state=0).fit(X_tr[sel.keep], y_tr[sel.keep])
     assert not np.allclose(v.models["kept"].estimator.coef_, unweighted.coef_, rtol=1e-3, atol=1e-4)
+
+
+def test_accuracy_interval_does_not_collapse_when_every_row_is_right():
+    # Wilson score interval (Wilson, 1927) as scipy.stats.binomtest computes it: 36 of 36 right gives
+    # [0.904, 1.0] at 95 %, while every bootstrap resample of a perfect model scores 1.0.
+    y = np.repeat([0, 1, 2], 12)
+    proba = np.eye(3)[y]
+    lo, hi = metric_interval(y, [proba], "accuracy", 200, 0.95, np.random.default_rng(0))
+    wilson = stats.binomtest(36, 36).proportion_ci(0.95, method="wilson")
+    assert (lo, hi) == pytest.approx((wilson.low, wilson.high))
+    assert lo < 0.95
+    # a metric that is not a proportion keeps the plain percentile interval
+    assert metric_interval(y, [proba], "macro_f1", 200, 0.95, np.random.default_rng(0)) == (1.0, 1.0)

@@ -18,7 +18,7 @@ from .errors import ConfigError
 
 SCORE_NAMES = (
     "forgetting", "aum", "el2n", "confidence", "variability",
-    "correctness", "aleatoric", "oof_loss", "oof_margin",
+    "correctness", "aleatoric", "oof_loss", "oof_margin", "oof_entropy",
 )
 METRICS = ("accuracy", "balanced_accuracy", "macro_f1", "roc_auc", "log_loss", "rmse", "mae", "r2")
 REGRESSION_METRICS = ("rmse", "mae", "r2")
@@ -124,13 +124,15 @@ class SelectionConfig(_Section):
     hysteresis: float = Field(0.1, ge=0, le=1, description=(
         "On a store with a run of this lineage: a row keeps its last decision unless its percentile of difficulty"
         " within its class moved by more than this."))
-    drop_suspect_labels: bool | Literal["auto"] = Field("auto", description=(
-        "Drop rows whose `suspect_label` is true (`drop:suspect_label`); the budget stays round(fraction × training"
-        " rows). `auto`: only when the fraction is at most 0.5 and the flagged rows are at most `suspect_limit` of "
-        "the training rows (docs/selection.md)."))
+    drop_suspect_labels: bool | Literal["auto", "share"] = Field("auto", description=(
+        "Rows whose `suspect_label` is true: `true` drops them all (`drop:suspect_label`); `share` keeps a uniform "
+        "draw of `fraction` of each class's suspects (`keep:suspect_share`) and drops the rest, so the kept rows "
+        "hold them at the table's rate; `false` leaves them to the rule; `auto` is `share` while at most "
+        "`suspect_limit` of the training rows are flagged, `false` above (docs/selection.md). The budget stays "
+        "round(fraction × training rows)."))
     suspect_limit: float = Field(0.2, gt=0, le=1, description=(
         "`drop_suspect_labels: auto`: when more than this share of training rows is flagged, the flags mark "
-        "overlapping classes rather than wrong labels, and no flagged row is dropped (the summary says so)."))
+        "overlapping classes rather than wrong labels, and flagged rows are left to the rule (the summary says so)."))
     segment_floor: int = Field(20, ge=0, description=(
         "Every value of every segment column keeps at least min(n_v, segment_floor) rows."))
     dedupe: bool = Field(True, description=(

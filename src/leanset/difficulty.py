@@ -11,7 +11,7 @@ import pandas as pd
 #: Sign that turns each score into a difficulty (higher = harder).
 DIFFICULTY_SIGN = {
     "forgetting": 1.0, "aum": -1.0, "el2n": 1.0, "confidence": -1.0, "variability": 1.0,
-    "correctness": -1.0, "aleatoric": 1.0, "oof_loss": 1.0, "oof_margin": -1.0,
+    "correctness": -1.0, "aleatoric": 1.0, "oof_loss": 1.0, "oof_margin": -1.0, "oof_entropy": 1.0,
 }
 
 

@@ -10,6 +10,7 @@ REASONS = {
     "keep:easy": "kept as one of the easiest rows of its class (easiest)",
     "keep:random": "kept by a uniform random draw within its class (random)",
     "keep:sampled": "kept by an importance-sampling draw within its class, weighted by 1/its inclusion probability (importance)",
+    "keep:suspect_share": "kept in the uniform draw that keeps suspected label errors at their share of the table (selection.drop_suspect_labels: share or auto)",
     "keep:floor": "kept only because its class would otherwise fall below selection.class_floor",
     "drop:over_budget": "dropped: its class's budget was filled by higher-priority rows",
     "drop:duplicate": "dropped: an exact copy (features and label) of an earlier row, which stands for it with dup_count",

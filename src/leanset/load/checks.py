@@ -187,7 +187,7 @@ def _check_continuous_label(label, config: Config, path: Path) -> None:
     need = LABEL_BINS * (config.proxy.folds + 1)
     if len(label) < need:
         raise InputError(f"{path}: regression label '{config.input.label}' has {len(label)} rows; it needs at least {need} ({LABEL_BINS} label-quantile bins, each split into a holdout and {config.proxy.folds} proxy folds); lower proxy.folds")
-    if config.selection.score in ("confidence", "aleatoric"):
+    if config.selection.score in ("confidence", "aleatoric", "oof_entropy"):
         raise ConfigError(f"selection.score: {config.selection.score} has no regression analogue; use aum, el2n, forgetting, correctness, variability, oof_loss or oof_margin")
     metric = config.verify.metric
     if metric not in REGRESSION_METRICS and "metric" in config.verify.model_fields_set:

@@ -279,7 +279,8 @@ def _frontier(run, draw) -> dict[str, Any]:
 def _agreement(run) -> dict[str, Any]:
     scores = run.get("scores") or {}
     return {"a": run.get("agreement"), "stability": scores.get("stability"), "repeats": scores.get("repeats"),
-            "label_errors": scores.get("label_errors"), "suspect_dropped": (run.get("selection") or {}).get("suspect_dropped")}
+            "label_errors": scores.get("label_errors"), "suspect_dropped": (run.get("selection") or {}).get("suspect_dropped"),
+            "suspect_shared": (run.get("selection") or {}).get("suspect_shared")}
 
 
 def _reasons(manifest, draw) -> dict[str, Any]:

@@ -35,7 +35,8 @@ def summary(run: dict[str, Any], run_dir: str | Path) -> Table:
     table.add_row("rows kept", f"{c['kept']:,} of {c['train']:,} train rows ({share:.1%}){floor}{dups}")
     cfg = run["config"]["selection"]
     kept = sel.get("suspects_kept")
-    suspects = (f"; {sel['suspect_dropped']:,} suspected label errors dropped" if sel.get("suspect_dropped") else
+    shared = f" ({sel['suspect_shared']:,} more kept at their share)" if sel.get("suspect_shared") else ""
+    suspects = (f"; {sel['suspect_dropped']:,} suspected label errors dropped{shared}" if sel.get("suspect_dropped") else
                 f"; {kept['rows']:,} suspected label errors left eligible ({kept['because']})" if kept else "")
     table.add_row("selection", f"{cfg['strategy']} on {cfg['score']}, {cfg['quotas']} class quotas{suspects}")
     _verdict_rows(table, run)

@@ -22,7 +22,7 @@ from typing import Callable
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from ..config import Config
+from ..config import SCORE_NAMES, Config
 from ..load.rows import RowFrame
 from ..versions import package_versions
 from .dynamics import Scores
@@ -116,6 +116,9 @@ def read_scores(folder: Path) -> Scores | None:
                    for k, family in enumerate(meta["families"])]
     except (OSError, KeyError, ValueError, pa.ArrowException) as exc:
         logger.warning("score cache %s unreadable (%s); scoring afresh", folder, exc)
+        return None
+    if missing := set(SCORE_NAMES) - set(table.column_names):
+        logger.warning("score cache %s lacks %s (saved by an earlier version); scoring afresh", folder, sorted(missing))
         return None
     return Scores(table=table.to_pandas(), proxies=proxies, checkpoints=meta["checkpoints"], info=meta["info"])
 

@@ -48,7 +48,7 @@ from ..config import SCORE_NAMES, Config, ExecutionConfig, ProxyConfig, check_en
 from ..errors import ConfigError
 from ..models.proxy import (FittedProxy, binary_logits, binned_dataset, class_rounds, fit_proxy, gbdt_params, n_checkpoints,
                             proba_matrix)
-from .dynamics import (Dynamics, ResidualDynamics, Scores, aum_cutoff, margin, repeat_folds, residual_band, stability,
+from .dynamics import (Dynamics, ResidualDynamics, Scores, aum_cutoff, margin, oof_scores, repeat_folds, residual_band, stability,
                        threshold_config, wants_threshold_samples)
 from ..load.rows import RowFrame
 
@@ -246,12 +246,7 @@ def shard_scores(X: np.ndarray, y: np.ndarray, fold: np.ndarray, models: list[st
             pred = booster.predict(X[out_rows])
             oof[out_rows] = proba_matrix(pred) if n_classes else pred
     out = dyn.result(np.arange(n))
-    if n_classes:
-        out["oof_loss"] = -np.log(np.clip(oof[np.arange(n), y], np.finfo(np.float64).eps, 1.0))
-        out["oof_margin"] = margin(oof, y)
-    else:
-        out["oof_loss"] = (oof - y) ** 2
-        out["oof_margin"] = -np.abs(oof - y)
+    out.update(oof_scores(oof, y, n_classes))
     return pd.DataFrame(out)
 
 

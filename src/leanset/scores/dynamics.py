@@ -282,15 +282,21 @@ def _cross_fit(frame: RowFrame, binned, rows, y, fold, n_classes, pc: ProxyConfi
             pick = np.flatnonzero(here == k)
             if len(pick):
                 oof[start + pick] = model.predict_proba(X[pick]) if n_classes else model.predict(X[pick])
-    if not n_classes:
-        out["oof_loss"] = (oof - y) ** 2  # per-row squared error: averages to sklearn.metrics.mean_squared_error
-        out["oof_margin"] = -np.abs(oof - y)
-        return out, proxies
-    # clip as sklearn.metrics.log_loss does (float64 eps), so oof_loss averages to its value
-    p_true = np.clip(oof[np.arange(n), y], np.finfo(np.float64).eps, 1.0)
-    out["oof_loss"] = -np.log(p_true)
-    out["oof_margin"] = margin(oof, y)
+    out.update(oof_scores(oof, y, n_classes))
     return out, proxies
+
+
+def oof_scores(oof: np.ndarray, y: np.ndarray, n_classes: int) -> dict[str, np.ndarray]:
+    """``oof_loss``, ``oof_margin`` and ``oof_entropy`` from out-of-fold predictions ``oof``
+    ((n, k) probabilities, or (n,) values for regression, where ``oof_entropy`` is NaN)."""
+    if not n_classes:
+        # per-row squared error: averages to sklearn.metrics.mean_squared_error
+        return {"oof_loss": (oof - y) ** 2, "oof_margin": -np.abs(oof - y), "oof_entropy": np.full(len(y), np.nan)}
+    # clip as sklearn.metrics.log_loss does (float64 eps), so oof_loss averages to its value
+    p_true = np.clip(oof[np.arange(len(y)), y], np.finfo(np.float64).eps, 1.0)
+    p = np.clip(oof, np.finfo(np.float64).tiny, 1.0)
+    entropy = -(oof * np.log(p)).sum(axis=1) / np.log(max(n_classes, 2))
+    return {"oof_loss": -np.log(p_true), "oof_margin": margin(oof, y), "oof_entropy": entropy}
 
 
 def stability(repeats: list[dict]) -> dict[str, float | None]:

@@ -14,7 +14,7 @@ from ..config import Config, ProxyConfig
 
 def wants_threshold_samples(config: Config) -> bool:
     """Whether the AUM threshold-sample passes run: ``proxy.threshold_samples`` true, or ``auto``
-    (the default) when ``selection.drop_suspect_labels`` may drop suspected label errors (true or ``auto``)."""
+    (the default) when ``selection.drop_suspect_labels`` may drop suspected label errors (true, ``share`` or ``auto``)."""
     ts = config.proxy.threshold_samples
     return ts is True or (ts == "auto" and config.selection.drop_suspect_labels is not False)
 

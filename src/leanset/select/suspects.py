@@ -1,9 +1,15 @@
-"""Suspected label errors in the select stage: whether they are dropped, and the selection without them.
+"""Suspected label errors in the select stage: how many of them a selection may keep.
 
-``selection.drop_suspect_labels`` is ``true`` (always drop), ``false`` (never) or ``auto`` (the
-default): drop them when the fraction is at most :data:`SUSPECT_DROP_UP_TO` and at most
-``selection.suspect_limit`` of the training rows are flagged (so many flags mark overlapping
-classes, not wrong labels).
+``selection.drop_suspect_labels``:
+
+- ``true``: drop every suspect;
+- ``share``: keep a uniform draw of ``fraction`` of each class's suspects and drop the rest, so the
+  kept rows hold suspects at the table's rate, as a random subset of the same size does, while the
+  rule cannot favour them as hard rows;
+- ``auto`` (the default): ``share`` while at most ``selection.suspect_limit`` of the training rows are
+  flagged; above that the flags mark overlapping classes rather than wrong labels, and they are left to
+  the rule like any other row;
+- ``false``: leave them to the rule.
 """
 
 from __future__ import annotations
@@ -17,52 +23,54 @@ from .rules import Selection, select
 _SUSPECT_FILL = {"keep": False, "reason": "drop:suspect_label", "stratum": -1, "weight": 0.0, "dup_count": 1, "conflict": False}
 
 
-#: ``drop_suspect_labels: auto`` drops suspects only up to this kept fraction. When most rows are kept, a kept
-#: set that holds the table's label noise stays calibrated to labels like the holdout's; dropping the suspects
-#: then made the kept model over-confident (log loss above random's interval on the suite's noisy table). After
-#: the coverage-centric paper (Zheng et al., ICLR 2023), which sets its hard cut by pruning rate; the value is
-#: this project's choice, measured by ``leanset bench suite`` (docs/selection.md).
-SUSPECT_DROP_UP_TO = 0.5
-
-
-def drops_suspects(config: SelectionConfig, suspect: np.ndarray | None) -> tuple[bool, str]:
-    """Whether the suspected label errors are dropped under ``config``, and why not when ``auto`` keeps
-    them (``""`` otherwise)."""
+def suspect_mode(config: SelectionConfig, suspect: np.ndarray | None) -> tuple[str, str]:
+    """``"drop"``, ``"share"`` or ``"eligible"`` for the suspects under ``config``, and why ``auto`` left
+    them eligible (``""`` otherwise)."""
     if suspect is None or config.drop_suspect_labels is False or not suspect.any():
-        return False, ""
+        return "eligible", ""
     if config.drop_suspect_labels is True:
-        return True, ""
-    if config.fraction > SUSPECT_DROP_UP_TO:
-        return False, f"fraction above {SUSPECT_DROP_UP_TO}"
-    if suspect.mean() > config.suspect_limit:
-        return False, f"{suspect.mean():.1%} flagged, above suspect_limit {config.suspect_limit}: overlapping classes"
-    return True, ""
+        return "drop", ""
+    if config.drop_suspect_labels == "auto" and suspect.mean() > config.suspect_limit:
+        return "eligible", f"{suspect.mean():.1%} flagged, above suspect_limit {config.suspect_limit}: overlapping classes"
+    return "share", ""
+
+
+def suspect_share(y: np.ndarray, suspect: np.ndarray, fraction: float, seed: int) -> np.ndarray:
+    """A uniform draw of round(``fraction`` × its suspects) of each class's suspects, as a boolean mask."""
+    rng = np.random.default_rng([seed, 0x5A5E])
+    take = np.zeros(len(y), bool)
+    for c in np.unique(y[suspect]):
+        rows = np.flatnonzero(suspect & (y == c))
+        take[rng.choice(rows, size=int(round(fraction * len(rows))), replace=False)] = True
+    return take
 
 
 def select_rows(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, seed: int,
                 suspect: np.ndarray | None = None, **per_row) -> Selection:
-    """:func:`~leanset.select.rules.select`, after setting aside suspected label errors unless
-    :func:`drops_suspects` says no.
+    """:func:`~leanset.select.rules.select`, after setting the suspected label errors aside as
+    :func:`suspect_mode` says.
 
-    Suspects are dropped with ``drop:suspect_label``; the others are selected with the fraction
-    raised so the budget stays ``round(fraction * n)`` of all ``n`` rows. ``per_row`` holds the
-    optional per-row arguments of ``select`` (``segments``, ``X``). When ``auto`` keeps the
-    suspects eligible, ``info["suspects_kept"]`` says why.
+    Suspects that are not kept get ``drop:suspect_label``; those ``share`` keeps get
+    ``keep:suspect_share`` and their class's weight. The others are selected with the fraction set so
+    that the budget stays ``round(fraction * n)`` of all ``n`` rows. ``per_row`` holds the optional
+    per-row arguments of ``select`` (``segments``, ``X``). When ``auto`` leaves the suspects eligible,
+    ``info["suspects_kept"]`` says why.
 
     Parameters
     ----------
     suspect : ndarray of bool, shape (n,), optional
         ``suspect_label`` of each row (``Scores.table``).
     """
-    drop, why_not = drops_suspects(config, suspect)
-    if not drop:
+    mode, why_not = suspect_mode(config, suspect)
+    if mode == "eligible":
         sub = select(difficulty, y, config, seed, **per_row)
         if why_not:
             sub.info["suspects_kept"] = {"rows": int(suspect.sum()), "because": why_not}
         return sub
+    share = suspect_share(y, suspect, config.fraction, seed) if mode == "share" else np.zeros(len(y), bool)
     ok = ~suspect
     n = len(y)
-    fraction = min(1.0, config.fraction * n / max(int(ok.sum()), 1))
+    fraction = min(1.0, max(config.fraction * n - share.sum(), 0.0) / max(int(ok.sum()), 1))
     sub = select(difficulty[ok], y[ok], config.model_copy(update={"fraction": fraction}), seed,
                  **{k: None if v is None else v[ok] for k, v in per_row.items()})
     fields = {}
@@ -73,5 +81,9 @@ def select_rows(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, 
             fields[name] = full
         else:
             fields[name] = value
-    fields["info"] = {**sub.info, "suspect_dropped": int(suspect.sum())}
+    fields["keep"][share] = True
+    fields["reason"][share] = "keep:suspect_share"
+    fields["weight"][share] = np.asarray(sub.info["class_weights"])[y[share]]
+    fields["info"] = {**sub.info, "kept": int(fields["keep"].sum()), "suspect_dropped": int((suspect & ~share).sum()),
+                      "suspect_shared": int(share.sum())}
     return Selection(**fields)
