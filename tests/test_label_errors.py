@@ -152,6 +152,7 @@ def test_auto_keeps_suspects_at_their_share_below_the_limit():
     per_class = [int(round(0.3 * np.sum(few & (y == c)))) for c in range(3)]
     assert [int(np.sum(shared.keep & few & (y == c))) for c in range(3)] == per_class
     assert shared.keep.sum() == 120 and shared.info["kept"] == 120
+    assert shared.info["quota"] == np.bincount(y[shared.keep], minlength=3).tolist()  # a class's quota is what it keeps
     assert set(shared.reason[few]) == {"keep:suspect_share", "drop:suspect_label"}
     assert shared.info["suspect_shared"] == sum(per_class) and shared.info["suspect_dropped"] == 40 - sum(per_class)
     assert (shared.weight[shared.keep] > 0).all()

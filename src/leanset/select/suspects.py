@@ -84,6 +84,7 @@ def select_rows(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, 
     fields["keep"][share] = True
     fields["reason"][share] = "keep:suspect_share"
     fields["weight"][share] = np.asarray(sub.info["class_weights"])[y[share]]
-    fields["info"] = {**sub.info, "kept": int(fields["keep"].sum()), "suspect_dropped": int((suspect & ~share).sum()),
-                      "suspect_shared": int(share.sum())}
+    quota = np.asarray(sub.info["quota"]) + np.bincount(y[share], minlength=len(sub.info["quota"]))
+    fields["info"] = {**sub.info, "kept": int(fields["keep"].sum()), "quota": quota.tolist(),
+                      "suspect_dropped": int((suspect & ~share).sum()), "suspect_shared": int(share.sum())}
     return Selection(**fields)
