@@ -164,6 +164,11 @@ def test_auto_keeps_suspects_at_their_share_below_the_limit():
     assert sel.info["suspects_kept"]["rows"] == 120 and "overlapping classes" in sel.info["suspects_kept"]["because"]
     forced = select_rows(d, y, config.model_copy(update={"drop_suspect_labels": True, "fraction": 0.7}), 0, suspect=many)
     assert forced.info["suspect_dropped"] == 120 and not forced.keep[many].any()
+    # the last class entirely suspect: its shared rows are kept with weight 1 and counted in its quota
+    only = y == 2
+    lone = select_rows(d, y, config.model_copy(update={"drop_suspect_labels": "share"}), 0, suspect=only)
+    assert lone.info["quota"][2] == int(round(0.3 * only.sum())) == int((lone.keep & only).sum())
+    assert (lone.weight[lone.keep & only] == 1.0).all()
     share_many = select_rows(d, y, config.model_copy(update={"drop_suspect_labels": "share"}), 0, suspect=many)
     assert share_many.info["suspect_shared"] == sum(int(round(0.3 * np.sum(many & (y == c)))) for c in range(3))
 

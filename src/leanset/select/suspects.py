@@ -83,8 +83,12 @@ def select_rows(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, 
             fields[name] = value
     fields["keep"][share] = True
     fields["reason"][share] = "keep:suspect_share"
-    fields["weight"][share] = np.asarray(sub.info["class_weights"])[y[share]]
-    quota = np.asarray(sub.info["quota"]) + np.bincount(y[share], minlength=len(sub.info["quota"]))
+    # a class whose every row is suspect is absent from ``sub``: quota 0, weight 1
+    k = int(y.max()) + 1
+    weights = np.pad(np.asarray(sub.info["class_weights"], np.float64), (0, k - len(sub.info["class_weights"])),
+                     constant_values=1.0)
+    fields["weight"][share] = weights[y[share]]
+    quota = np.pad(np.asarray(sub.info["quota"]), (0, k - len(sub.info["quota"]))) + np.bincount(y[share], minlength=k)
     fields["info"] = {**sub.info, "kept": int(fields["keep"].sum()), "quota": quota.tolist(),
                       "suspect_dropped": int((suspect & ~share).sum()), "suspect_shared": int(share.sum())}
     return Selection(**fields)
