@@ -44,7 +44,8 @@ def test_same_mask_from_pandas_polars_numpy_and_arrow(cancer):
         np.testing.assert_array_equal(fit.reason_, ref.reason_, err_msg=name)
         pd.testing.assert_frame_equal(fit.scores_, ref.scores_)
     assert set(ref.scores_.columns) >= set(leanset.config.SCORE_NAMES)
-    assert set(ref.reason_[ref.keep_]) == {"keep:stratum"}
+    # the default rule: stratified, with suspected label errors kept at their share (drop_suspect_labels: auto)
+    assert "keep:stratum" in set(ref.reason_[ref.keep_]) <= {"keep:stratum", "keep:suspect_share"}
     assert (ref.sample_weight_[~ref.keep_] == 0).all() and (ref.sample_weight_[ref.keep_] > 0).all()
     assert list(ref.feature_names_in_) == list(X.columns) and ref.n_features_in_ == 30
     assert not hasattr(fits["numpy"], "feature_names_in_")
