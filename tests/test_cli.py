@@ -80,6 +80,10 @@ def test_demo_config_end_to_end(prefect_api, tmp_path):
     v = run["verdict"]
     assert v["status"] in {"pass", "fail", "inconclusive"}
     assert v["ci"][0] <= v["ci"][1]
+    # against_random places the kept value against random's interval (checked by hand-worked cases in test_verify)
+    lo, hi = v["random_ci"]
+    assert v["against_random"]["metric"] == ("better" if v["kept"] > hi else "worse" if v["kept"] < lo else "on_par")
+    assert "against random" in result.output
     assert {"run_id", "config", "config_hash", "input", "counts", "verdict", "timings", "versions"} <= set(run)
     assert set(run["timings"]) >= {"load", "score", "select", "verify", "write"}
     assert {p.name for p in (run_dir / "models").iterdir()} >= {"proxy_fold0.txt", "target_full.txt", "target_kept.txt", "target_random.txt"}

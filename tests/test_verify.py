@@ -483,3 +483,17 @@ def test_accuracy_interval_does_not_collapse_when_every_row_is_right():
     assert lo < 0.95
     # a metric that is not a proportion keeps the plain percentile interval
     assert metric_interval(y, [proba], "macro_f1", 200, 0.95, np.random.default_rng(0)) == (1.0, 1.0)
+
+
+def test_against_random_places_kept_against_randoms_interval_in_the_metrics_direction():
+    # hand-worked (this project's wording of the comparison the selection suite flags):
+    # above random's interval is "better", inside "on_par", below "worse"; rmse and
+    # calibration losses are lower-is-better, so their sides swap.
+    from leanset.verify.verdict import against_random
+    assert against_random("accuracy", 0.90, (0.85, 0.88)) == {"metric": "better"}
+    assert against_random("accuracy", 0.90, (0.89, 0.92)) == {"metric": "on_par"}
+    assert against_random("accuracy", 0.80, (0.85, 0.88)) == {"metric": "worse"}
+    assert against_random("rmse", 1.0, (1.2, 1.5)) == {"metric": "better"}
+    assert against_random("rmse", 1.6, (1.2, 1.5)) == {"metric": "worse"}
+    cal = {"kept": 0.40, "random_ci": [0.30, 0.35]}
+    assert against_random("accuracy", 0.90, (0.89, 0.92), cal) == {"metric": "on_par", "calibration": "worse"}

@@ -24,7 +24,7 @@ from ..reasons import REASONS
 from .coded import Coded
 from .charts import (Charts, bars_chart, calibration_name, churn_chart, cost_chart, frontier_chart, metrics_chart,
                      reasons_chart, scores_chart, verdict_chart)
-from .format import interval, number, seconds, share, signed
+from .format import against_random_text, interval, number, seconds, share, signed
 
 #: Section ids of report.html, in page order.
 SECTIONS = ("verdict", "metrics", "cost", "composition", "scores", "review", "churn", "frontier",
@@ -366,5 +366,6 @@ def render_html(run: dict[str, Any], manifest, segments: dict[str, Any] | None =
         "scores": _scores(run, manifest, draw), "review": _review(run, manifest, rows, hint),
         "churn": _churn(run, history, draw), "frontier": _frontier(run, draw), "agreement": _agreement(run),
         "reasons": _reasons(manifest, draw), "config": _config(run), "store_hint": hint,
+        "against_random": against_random_text(run["verdict"]["against_random"]) if run["verdict"].get("against_random") else None,
     }
     return _environment().get_template(_TEMPLATE).render(**context)

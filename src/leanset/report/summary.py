@@ -10,6 +10,7 @@ from rich import box
 from rich.table import Table
 from rich.text import Text
 
+from .format import against_random_text
 from .ledger import ledger_lines
 
 CAUTION = ("Pruning can hide harm to small groups and rare cases: check per-group metrics, keep a human "
@@ -48,6 +49,8 @@ def summary(run: dict[str, Any], run_dir: str | Path) -> Table:
         table.add_row("fraction search", f"{head} (tried {tried})")
     table.add_row("random interval", f"{v['random_ci'][0]:.4f} – {v['random_ci'][1]:.4f} over "
                   f"{run['config']['verify']['random_repeats']} random subsets")
+    if v.get("against_random"):
+        table.add_row("against random", against_random_text(v["against_random"]))
     if v.get("failed_segments"):
         table.add_row("segment guard", "metric dropped too far for: " + ", ".join(v["failed_segments"]))
     ag = run.get("agreement")
@@ -131,6 +134,7 @@ def markdown_summary(run: dict[str, Any], run_dir: str | Path) -> str:
              f"| rows in | {run['input']['rows']:,} ({c['train']:,} train, {c['holdout']:,} holdout) |",
              f"| rows kept | {c['kept']:,} of {c['train']:,} ({c['kept'] / max(c['train'], 1):.1%}) |",
              f"| {v['metric']} | full {v['full']:.4f} · kept {v['kept']:.4f} · random {v['random']:.4f} |",
+             *([f"| against random | {against_random_text(v['against_random'])} |"] if v.get("against_random") else []),
              f"| new rows | {c.get('new', run['input']['rows']):,} |"]
     ch = run.get("churn")
     if ch:

@@ -162,10 +162,25 @@ class Verdict(Comparison):
     models: dict[str, FittedTarget]
 
     def to_dict(self) -> dict[str, Any]:
-        """Everything but the fitted models, JSON-ready."""
+        """Everything but the fitted models, JSON-ready, with :func:`against_random`."""
         d = {k: v for k, v in self.__dict__.items() if k != "models"}
         d["ci"], d["random_ci"] = list(self.ci), list(self.random_ci)
+        d["against_random"] = against_random(self.metric, self.kept, self.random_ci, self.calibration)
         return d
+
+
+def against_random(metric: str, kept: float, random_ci, calibration: dict[str, Any] | None = None) -> dict[str, str]:
+    """Where the kept model stands against the same-size random subsets: ``metric`` is ``better``,
+    ``on_par`` or ``worse`` as the kept value lies above, inside or below random's interval (in the
+    metric's own direction); ``calibration`` likewise against random's calibration interval (lower
+    is better), when there is one. On par is no win: a random subset of that size costs nothing."""
+    def where(value: float, lo: float, hi: float, sign: int) -> str:
+        lo, hi = sorted((sign * lo, sign * hi))
+        return "better" if sign * value > hi else "worse" if sign * value < lo else "on_par"
+    out = {"metric": where(kept, *random_ci, ORIENTATION[metric])}
+    if calibration and "random_ci" in calibration:
+        out["calibration"] = where(calibration["kept"], *calibration["random_ci"], -1)
+    return out
 
 
 def _calibration_report(y_hold, proba, random_proba, cmp: Comparison, config: VerifyConfig, rng) -> dict[str, Any]:
