@@ -440,3 +440,30 @@ def test_bench_score_prints_its_figures_with_the_ratio_last():
     lines = result.output.strip().splitlines()
     assert lines[-1].startswith("score_overhead_ratio=") and float(lines[-1].split("=")[1]) > 0
     assert any(line.startswith("peak RSS:") for line in lines) and any("plain proxy fits (K=3)" in line for line in lines)
+
+
+# ---------------------------------------------------------------- locality key
+
+def test_morton_interleaves_bits_hand_worked():
+    # Morton (1966) Z-order: bit b of column j goes to bit b*d + j. Hand-worked for d = 2, 2 bits:
+    # (1, 0) -> 0b01 = 1; (0, 1) -> 0b10 = 2; (2, 0) -> 0b0100 = 4; (3, 3) -> 0b1111 = 15.
+    q = np.array([[1, 0], [0, 1], [2, 0], [3, 3]], np.int64)
+    assert scores_mod.morton(q, 2).tolist() == [1, 2, 4, 15]
+
+
+def test_locus_takes_feature_ranges_from_the_model_and_keeps_near_copies_together(tmp_path):
+    # LightGBM's model dump records each feature's min and max over the rows its bins were built
+    # from (feature_infos): here all training rows, binned once; scikit-learn's wine table
+    cfg, frame = _frame(tmp_path, _wine, PROXIES["gbdt"])
+    s = score(frame, cfg)
+    X = frame.X[frame.train]
+    key = scores_mod.Locus.from_booster(s.proxies[0].model, cfg.seed)
+    np.testing.assert_allclose(key.low, X.min(axis=0), rtol=1e-6)
+    np.testing.assert_allclose(key.low + key.span, X.max(axis=0), rtol=1e-6)
+    assert np.array_equal(s.table["locus"].to_numpy(), key(X))
+    # a copy moved by a hair keeps its key; the key does not depend on the rows around it
+    assert np.array_equal(key(X[:5] * (1 + 1e-9)), key(X)[:5])
+    assert np.array_equal(key(X[::-1])[::-1], key(X))
+    # the linear proxy has no ranges of its own: every row gets 0, and select falls back to a uniform order
+    cfg, frame = _frame(tmp_path, _wine, PROXIES["linear"])
+    assert (score(frame, cfg).table["locus"] == 0).all()

@@ -465,3 +465,48 @@ def test_stabilise_never_keeps_a_filtered_row():
     fresh.reason[:50] = "drop:duplicate"
     out = stabilise(fresh, d, y, parent.keep.astype(np.int8), class_percentile(d, y), hysteresis=0.5, seed=0)
     assert not out.keep[:50].any() and (out.reason[:50] == "drop:duplicate").all()
+
+
+# ---------------------------------------------------------------- spread and strata: auto
+
+def test_van_der_corput_is_scipys_unscrambled_halton_in_one_dimension():
+    # scipy.stats.qmc.Halton(d=1, scramble=False) is the base-2 van der Corput sequence
+    from scipy.stats import qmc
+    from leanset.select.rules import van_der_corput
+    np.testing.assert_allclose(van_der_corput(np.arange(64)), qmc.Halton(d=1, scramble=False).random(64).ravel())
+
+
+def _spread(locus, quota, seed, spread=True):
+    y = np.zeros(len(locus), np.int32)
+    cfg = SelectionConfig(fraction=quota / len(locus), strategy="stratified", strata=1, spread=spread, class_floor=0)
+    return select(np.zeros(len(locus)), y, cfg, seed=seed, locus=np.asarray(locus, np.int64))
+
+
+def test_spread_takes_rows_evenly_along_the_locus_order():
+    # hand-worked: 64 distinct keys, 8 kept. Positions p along the key order from a random start r
+    # are taken by the van der Corput value of (p + r) mod 64, whose 8 smallest are 0, 8, ..., 56:
+    # the kept positions are 8 apart, whatever the seed.
+    for seed in range(5):
+        kept = np.flatnonzero(_spread(np.arange(64)[::-1], 8, seed).keep)
+        assert np.all(np.diff(np.sort(kept)) == 8)
+    # near-copies share a key: 5 groups of 4 identical keys, 5 kept -> one row of every group first
+    groups = np.repeat([10, 20, 30, 40, 50], 4)
+    for seed in range(10):
+        assert len(set(groups[_spread(groups, 5, seed).keep])) == 5
+    # a uniform draw does not promise that: over the same seeds some draw keeps two copies
+    # (all five groups hit with probability 4^5 * 5! / (20*19*18*17*16) = 0.066 per draw)
+    assert min(len(set(groups[_spread(groups, 5, seed, spread=False).keep])) for seed in range(10)) < 5
+
+
+def test_strata_auto_is_one_bin_below_half_and_fifty_from_half():
+    from leanset.select.rules import strata_count
+    assert strata_count(SelectionConfig(fraction=0.3)) == 1
+    assert strata_count(SelectionConfig(fraction=0.49)) == 1
+    assert strata_count(SelectionConfig(fraction=0.5)) == 50
+    assert strata_count(SelectionConfig(fraction=0.3, strata=7)) == 7
+    d = np.linspace(0, 1, 200)
+    y = np.zeros(200, np.int32)
+    sel = select(d, y, SelectionConfig(fraction=0.3, class_floor=0), seed=0)
+    assert sel.info["strata"] == 1 and set(sel.stratum) == {0}
+    sel = select(d, y, SelectionConfig(fraction=0.6, class_floor=0), seed=0)
+    assert sel.info["strata"] == 50 and len(set(sel.stratum)) == 50

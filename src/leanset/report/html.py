@@ -172,7 +172,7 @@ def _score_view(run, manifest) -> dict[str, Any]:
         edges, span = [], None
         if sel.get("strategy") == "stratified" and rest.any() and not pooled:
             lo, hi = np.min(sign * values[rest]), np.max(sign * values[rest])
-            bounds = sorted(float(sign * e) for e in np.linspace(lo, hi, int(sel.get("strata", 1)) + 1))
+            bounds = sorted(float(sign * e) for e in np.linspace(lo, hi, _strata(run) + 1))
             edges, span = bounds[1:-1], (bounds[0], bounds[-1], (bounds[-1] - bounds[0]) / max(len(bounds) - 1, 1))
         cut_rows = m & reason.eq("drop:hard_cut") & (not pooled)
         hard_cut = float(sign * np.min(sign * values[cut_rows])) if cut_rows.any() else None
@@ -182,7 +182,13 @@ def _score_view(run, manifest) -> dict[str, Any]:
                         "by_reason": by_reason, "keep_values": values[m & keep], "drop_values": values[m & drop]})
     return {"name": name, "classes": classes, "suspect_cut": suspect_cut, "cutoffs": cutoffs,
             "higher_is_harder": sign > 0, "strategy": sel.get("strategy"), "hard_cut_share": sel.get("hard_cut"),
-            "strata": sel.get("strata")}
+            "strata": _strata(run)}
+
+
+def _strata(run) -> int:
+    """The difficulty bins per class the run used (``strata: auto`` resolved; runs that predate it: the config's)."""
+    strata = (run.get("selection") or {}).get("strata", run["config"]["selection"].get("strata", 1))
+    return strata if isinstance(strata, int) else 1
 
 
 def _scores(run, manifest, draw) -> dict[str, Any]:

@@ -117,7 +117,7 @@ def read_scores(folder: Path) -> Scores | None:
     except (OSError, KeyError, ValueError, pa.ArrowException) as exc:
         logger.warning("score cache %s unreadable (%s); scoring afresh", folder, exc)
         return None
-    if missing := set(SCORE_NAMES) - set(table.column_names):
+    if missing := {*SCORE_NAMES, "locus"} - set(table.column_names):
         logger.warning("score cache %s lacks %s (saved by an earlier version); scoring afresh", folder, sorted(missing))
         return None
     return Scores(table=table.to_pandas(), proxies=proxies, checkpoints=meta["checkpoints"], info=meta["info"])

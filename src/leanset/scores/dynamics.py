@@ -209,8 +209,9 @@ class Scores:
     ----------
     table : pandas.DataFrame
         One row per training row, in ``frame.train`` order: a column per score in
-        ``SCORE_NAMES``, ``never_learned`` and ``suspect_label`` (nullable boolean: null when the
-        threshold-sample passes did not run).
+        ``SCORE_NAMES``, ``never_learned``, ``suspect_label`` (nullable boolean: null when the
+        threshold-sample passes did not run) and ``locus`` (:class:`Locus` of the first repeat's
+        first fold model; 0 for the linear proxy).
     proxies : list of FittedProxy
         The fold models of the first repeat, in fold order.
     checkpoints : int
@@ -254,8 +255,10 @@ def repeat_folds(frame: RowFrame, config: Config, r: int) -> tuple[np.ndarray, l
     return _refold(frame.groups[train], config.proxy.folds, rng), [int(v) for v in rng.integers(2**31, size=config.proxy.folds)]
 
 
-def _cross_fit(frame: RowFrame, binned, rows, y, fold, n_classes, pc: ProxyConfig, seeds: list[int]) -> tuple[dict, list[FittedProxy]]:
-    """One cross-fitting pass: in-fold dynamics and out-of-fold scores of the training rows ``rows``.
+def _cross_fit(frame: RowFrame, binned, rows, y, fold, n_classes, pc: ProxyConfig, seeds: list[int],
+               locus_seed: int) -> tuple[dict, list[FittedProxy]]:
+    """One cross-fitting pass: in-fold dynamics and out-of-fold scores of the training rows ``rows``,
+    and their ``locus`` (:class:`Locus` of the first fold model, projections seeded by ``locus_seed``).
 
     The gbdt proxy trains on subsets of ``binned`` (the rows ``rows``, binned once); the linear proxy on
     copies of its fold's rows of ``frame.X``. Out-of-fold predictions take one pass over the
@@ -276,14 +279,63 @@ def _cross_fit(frame: RowFrame, binned, rows, y, fold, n_classes, pc: ProxyConfi
     out = dyn.result(slice(None))
     dyn = None  # its running sums go before the out-of-fold pass allocates
     oof = np.empty((n, n_classes)) if n_classes else np.empty(n)
+    locus = np.zeros(n, np.int64)
+    key = Locus.from_booster(proxies[0].model, locus_seed) if pc.family == "gbdt" else None
     for start, X in frame.feature_batches(train_only=True):  # rows is frame.train, in order
         here = fold[start:start + len(X)]
+        if key is not None:
+            locus[start:start + len(X)] = key(X)
         for k, model in enumerate(proxies):
             pick = np.flatnonzero(here == k)
             if len(pick):
                 oof[start + pick] = model.predict_proba(X[pick]) if n_classes else model.predict(X[pick])
     out.update(oof_scores(oof, y, n_classes))
+    out["locus"] = locus
     return out, proxies
+
+
+class Locus:
+    """A locality key per row: the Morton (Z-order) code of ``dims`` seeded random projections of the
+    features, each feature first scaled to [-0.5, 0.5] by its range.
+
+    Near-copies get equal or neighbouring keys, and rows next to each other in the key's order are
+    close in the projected space (Morton, 1966), so taking rows evenly along that order covers the
+    feature space. The ranges are a gbdt fold model's (LightGBM's ``feature_infos``), so the key is the
+    same however the rows are read.
+    """
+
+    BITS = 15  # levels per projection: 2**15, four projections in 60 bits
+
+    def __init__(self, low: np.ndarray, high: np.ndarray, seed: int, dims: int = 4):
+        self.low = np.nan_to_num(np.asarray(low, np.float64))
+        span = np.nan_to_num(np.asarray(high, np.float64)) - self.low
+        self.span = np.where(span > 0, span, 1.0)
+        self.dims = dims
+        self.W = np.random.default_rng([seed, 0x10C5]).standard_normal((len(self.low), dims)) / np.sqrt(max(len(self.low), 1))
+
+    @classmethod
+    def from_booster(cls, booster, seed: int) -> Locus:
+        """Ranges from the model's ``feature_infos`` (a feature LightGBM found constant gets range 0)."""
+        infos = booster.dump_model(num_iteration=1)["feature_infos"]
+        low = [infos[name].get("min_value", 0.0) if isinstance(infos.get(name), dict) else 0.0 for name in booster.feature_name()]
+        high = [infos[name].get("max_value", 0.0) if isinstance(infos.get(name), dict) else 0.0 for name in booster.feature_name()]
+        return cls(np.asarray(low, np.float64), np.asarray(high, np.float64), seed)
+
+    def __call__(self, X: np.ndarray) -> np.ndarray:
+        z = np.nan_to_num((np.asarray(X, np.float64) - self.low) / self.span - 0.5) @ self.W
+        q = np.clip(np.floor((z + 2.0) / 4.0 * 2**self.BITS), 0, 2**self.BITS - 1).astype(np.int64)
+        return morton(q, self.BITS)
+
+
+def morton(q: np.ndarray, bits: int) -> np.ndarray:
+    """Interleave the low ``bits`` bits of each column of the non-negative integers ``q`` (n, d): bit b
+    of column j goes to bit b·d + j of the code (Morton, 1966)."""
+    d = q.shape[1]
+    code = np.zeros(len(q), np.int64)
+    for b in range(bits):
+        for j in range(d):
+            code |= ((q[:, j] >> b) & 1) << (b * d + j)
+    return code
 
 
 def oof_scores(oof: np.ndarray, y: np.ndarray, n_classes: int) -> dict[str, np.ndarray]:
@@ -348,7 +400,7 @@ def score(frame: RowFrame, config: Config) -> Scores:
     runs, proxies = [], []
     for r in range(pc.repeats):
         fold, seeds = repeat_folds(frame, config, r)
-        out, models = _cross_fit(frame, binned, train, y, fold, n_classes, pc, seeds)
+        out, models = _cross_fit(frame, binned, train, y, fold, n_classes, pc, seeds, config.seed)
         runs.append(out)
         proxies = proxies or models
     del binned
@@ -356,6 +408,7 @@ def score(frame: RowFrame, config: Config) -> Scores:
     table = pd.DataFrame({name: runs[0][name] if len(runs) == 1 else np.mean([o[name] for o in runs], axis=0)
                           for name in SCORE_NAMES}, copy=False)
     table["never_learned"] = np.logical_and.reduce([o["never_learned"] for o in runs])
+    table["locus"] = runs[0]["locus"]
     if pc.repeats > 1:
         info["stability"] = stability(runs)
     del runs

@@ -8,7 +8,10 @@ rows of its order. Strategies:
 - ``stratified``: coverage-centric coreset selection (Zheng et al., ICLR 2023): the hardest
   ``hard_cut`` share of a class is set aside as likely label noise, the rest is binned by
   difficulty into ``strata`` equal-width bins, and the budget is filled evenly across bins, so a
-  small bin keeps all its rows and what it leaves goes to the larger ones.
+  small bin keeps all its rows and what it leaves goes to the larger ones. With ``spread``, a
+  bin's rows are taken evenly along the score stage's locality key (``locus``) rather than
+  uniformly, so they cover the feature space; ``strata: auto`` uses one bin below half the rows
+  kept (coverage of the feature space alone) and 50 from half on (:func:`strata_count`).
 - ``random``: uniform, the baseline.
 - ``importance``: importance sampling with Horvitz–Thompson weights. Each row of a class is
   drawn with inclusion probability π_i ∝ 1 + t·(2 r_i − 1), capped at 1 and summing to the
@@ -123,6 +126,19 @@ def _strata(d: np.ndarray, n_strata: int) -> np.ndarray:
     return np.minimum(((d - lo) / (hi - lo) * n_strata).astype(np.int64), n_strata - 1).astype(np.int16)
 
 
+def strata_count(config: SelectionConfig) -> int:
+    """``config.strata``, or for ``auto``: 1 below half the rows kept, 50 from half on.
+
+    After Sorscher et al. (NeurIPS 2022): when little is kept, what matters is to cover the data (one
+    bin, rows spread over the feature space); when much is kept, hard rows carry what is left to learn
+    (difficulty bins filled evenly, which keeps the sparse hard bins whole). The switch at one half and
+    the 50 bins are this project's choice, measured by ``leanset bench suite`` (docs/selection.md).
+    """
+    if config.strata != "auto":
+        return int(config.strata)
+    return 1 if config.fraction < 0.5 else 50
+
+
 def auto_tilt(fraction: float) -> float:
     """The ``importance`` tilt for ``tilt: auto``: 2·fraction − 0.4, clipped to [−0.5, 0.8].
 
@@ -158,12 +174,50 @@ def systematic_sample(pi: np.ndarray, rng: np.random.Generator) -> np.ndarray:
     return np.sort(perm[hits > 0])
 
 
-def _priority(d: np.ndarray, quota: int, config: SelectionConfig, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray, int]:
+def van_der_corput(p: np.ndarray) -> np.ndarray:
+    """The base-2 radical inverse of non-negative integers: 0, 1/2, 1/4, 3/4, 1/8, ... for 0, 1, 2, 3, 4.
+
+    The first m terms of the sequence split [0, 1) as evenly as m points can at every m, so positions
+    0..n-1 taken in the order of their radical inverse are spread evenly along the row for any count
+    taken (van der Corput, 1935).
+    """
+    p = np.asarray(p, np.uint64).copy()
+    out, scale = np.zeros(len(p)), 0.5
+    while p.any():
+        out += (p & np.uint64(1)) * scale
+        p >>= np.uint64(1)
+        scale /= 2
+    return out
+
+
+def spread_keys(locus: np.ndarray, tie: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+    """Each row's place in a spread order of one class: positions along the ``locus`` order, from a
+    random start, mapped to their van der Corput value, so the rows with the smallest keys lie evenly
+    along the locus order however many are taken."""
+    by_locus = np.lexsort((tie, locus))
+    offset = int(rng.integers(0, len(locus)))
+    keys = np.empty(len(locus))
+    keys[by_locus] = van_der_corput((np.arange(len(locus)) + offset) % len(locus))
+    return keys
+
+
+def _turns(s: np.ndarray, tie: np.ndarray) -> np.ndarray:
+    """Each row's turn inside its stratum ``s``, in the order of ``tie``."""
+    turn = np.empty(len(s), np.int64)
+    order = np.lexsort((tie, s))
+    starts = np.searchsorted(s[order], s[order], side="left")
+    turn[order] = np.arange(len(s)) - starts
+    return turn
+
+
+def _priority(d: np.ndarray, quota: int, config: SelectionConfig, rng: np.random.Generator,
+              locus: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, int]:
     """Priority order of one class's rows, their strata, and how many lead the order after a hard cut.
 
     Returns (order, stratum, n_cut): ``order`` lists local indices, best first; the last
     ``n_cut`` entries are the rows removed by the hard cut (``stratified`` only). For
-    ``importance``, the first ``quota`` entries are the drawn rows.
+    ``importance``, the first ``quota`` entries are the drawn rows. With ``stratified`` and ``spread``,
+    a stratum's rows take their turns in the order of :func:`spread_keys` over ``locus``.
     """
     n = len(d)
     tie = rng.random(n)
@@ -182,14 +236,12 @@ def _priority(d: np.ndarray, quota: int, config: SelectionConfig, rng: np.random
     n_cut = min(int(np.floor(config.hard_cut * n)), n - quota)
     by_difficulty = np.lexsort((tie, -d))
     cut, rest = by_difficulty[:n_cut], by_difficulty[n_cut:]
-    stratum[rest] = _strata(d[rest], config.strata)
-    # Round-robin over strata: a row's rank inside its stratum decides its turn, so taking the
+    stratum[rest] = _strata(d[rest], strata_count(config))
+    # Round-robin over strata: a row's turn inside its stratum decides its place, so taking the
     # first q rows gives every stratum min(size, share) rows, the smallest strata filled first.
     s = stratum[rest].astype(np.int64)
-    within = np.empty(len(rest), np.int64)
-    shuffled = np.lexsort((tie[rest], s))
-    starts = np.searchsorted(s[shuffled], s[shuffled], side="left")
-    within[shuffled] = np.arange(len(rest)) - starts
+    spread = spread_keys(locus, tie, rng)[rest] if locus is not None and config.spread else tie[rest]
+    within = _turns(s, spread)
     order = rest[np.lexsort((tie[rest], within))]
     return np.concatenate((order, cut)), stratum, n_cut
 
@@ -238,7 +290,7 @@ def _take_by_cell(order: np.ndarray, cells: np.ndarray, quota: int) -> np.ndarra
 
 
 def select(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, seed: int,
-           segments: np.ndarray | None = None, X: np.ndarray | None = None) -> Selection:
+           segments: np.ndarray | None = None, X: np.ndarray | None = None, locus: np.ndarray | None = None) -> Selection:
     """Decide which training rows to keep.
 
     Parameters
@@ -254,6 +306,9 @@ def select(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, seed:
         their size, and each segment value keeps at least ``min(n_v, segment_floor)`` rows.
     X : ndarray, shape (n, f) or (n,), optional
         Features, or their per-row hashes, to collapse exact duplicates when ``config.dedupe`` is on.
+    locus : ndarray of int, shape (n,), optional
+        Locality key (``Scores.table["locus"]``): with ``stratified`` and ``config.spread``, a stratum's
+        rows are taken evenly along it instead of uniformly.
 
     Returns
     -------
@@ -271,7 +326,7 @@ def select(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, seed:
     budget = max(1, int(round(config.fraction * n)))
     quota = class_quotas(counts, budget, config.quotas, config.class_floor)
     unfloored = class_quotas(counts, budget, config.quotas, 0)
-    keep, reason, stratum, rank = _fill_classes(difficulty, y, pool, quota, unfloored, config, seed, segments)
+    keep, reason, stratum, rank = _fill_classes(difficulty, y, pool, quota, unfloored, config, seed, segments, locus)
     reason[is_copy] = "drop:duplicate"
     segment_added = _segment_floors(keep, reason, rank, pool, segments, config.segment_floor)
     w, weight = _weights(difficulty, y, keep, pool, quota, all_counts, config)
@@ -285,13 +340,14 @@ def select(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, seed:
         "class_weights": w.tolist(),
         "duplicates_dropped": int(is_copy.sum()),
         "conflicting_rows": int(conflict.sum()),
+        **({"strata": strata_count(config)} if config.strategy == "stratified" else {}),
     }
     return Selection(keep=keep, reason=reason, stratum=stratum, weight=weight,
                      dup_count=dup_count, conflict=conflict, info=info)
 
 
 def _fill_classes(difficulty: np.ndarray, y: np.ndarray, pool: np.ndarray, quota: np.ndarray, unfloored: np.ndarray,
-                  config: SelectionConfig, seed: int, segments: np.ndarray | None):
+                  config: SelectionConfig, seed: int, segments: np.ndarray | None, locus: np.ndarray | None = None):
     """Each class keeps the first ``quota`` rows of its priority order (shared among segment cells in
     proportion); returns keep, reason, stratum and each row's rank in its class's order (a share)."""
     n = len(y)
@@ -305,7 +361,7 @@ def _fill_classes(difficulty: np.ndarray, y: np.ndarray, pool: np.ndarray, quota
         rows = np.flatnonzero((y == c) & pool)
         if len(rows) == 0:  # a class code absent from y: nothing to order (its quota is 0)
             continue
-        order, s, n_cut = _priority(difficulty[rows], int(quota[c]), config, rng)
+        order, s, n_cut = _priority(difficulty[rows], int(quota[c]), config, rng, None if locus is None else locus[rows])
         stratum[rows] = s
         rank[rows[order]] = np.arange(len(order)) / len(order)
         candidates = order[: len(order) - n_cut]

@@ -17,7 +17,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..config import SelectionConfig
-from .rules import Selection, select
+from .rules import Selection, select, strata_count
 
 #: What a row dropped as a suspected label error holds in each per-row field of a Selection.
 _SUSPECT_FILL = {"keep": False, "reason": "drop:suspect_label", "stratum": -1, "weight": 0.0, "dup_count": 1, "conflict": False}
@@ -71,7 +71,8 @@ def select_rows(difficulty: np.ndarray, y: np.ndarray, config: SelectionConfig, 
     ok = ~suspect
     n = len(y)
     fraction = min(1.0, max(config.fraction * n - share.sum(), 0.0) / max(int(ok.sum()), 1))
-    sub = select(difficulty[ok], y[ok], config.model_copy(update={"fraction": fraction}), seed,
+    # the bins follow the fraction asked for, not the share of the unflagged rows that makes it up
+    sub = select(difficulty[ok], y[ok], config.model_copy(update={"fraction": fraction, "strata": strata_count(config)}), seed,
                  **{k: None if v is None else v[ok] for k, v in per_row.items()})
     fields = {}
     for name, value in vars(sub).items():

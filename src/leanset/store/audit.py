@@ -138,7 +138,7 @@ def _thresholds(target: dict[str, Any], label: str, by_reason: dict[str, dict[st
     k = classes.index(label) if label in classes else None
     return {
         "score": sel["score"], "strategy": sel["strategy"], "fraction": sel["fraction"], "quotas": sel["quotas"],
-        "class_floor": sel["class_floor"], "strata": sel["strata"], "hard_cut": sel["hard_cut"],
+        "class_floor": sel["class_floor"], "strata": info.get("strata", sel["strata"]), "hard_cut": sel["hard_cut"],
         "hysteresis": sel.get("hysteresis"),
         "class_quota": info["quota"][k] if k is not None and "quota" in info else None,
         "class_rows": info["class_counts"][k] if k is not None and "class_counts" in info else None,
