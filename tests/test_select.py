@@ -164,7 +164,7 @@ def test_exact_fraction_and_one_reason_per_row(strategy, quotas):
         assert np.all(np.char.startswith(sel.reason[~sel.keep].astype(str), "drop:"))
         assert set(sel.reason[sel.keep]) == {KEEP_REASON[strategy]}  # no floor binds
         if strategy == "stratified":
-            assert np.all((sel.stratum[sel.keep] >= 0) & (sel.stratum[sel.keep] < cfg.strata))
+            assert np.all((sel.stratum[sel.keep] >= 0) & (sel.stratum[sel.keep] < sel.info["strata"]))
         else:
             assert np.all(sel.stratum == -1)
             assert "drop:hard_cut" not in set(sel.reason)
@@ -399,7 +399,7 @@ def test_select_frame_ranks_by_the_given_selections_score():
     frame = SimpleNamespace(train=np.arange(n), groups=np.zeros(n, np.int32), segments=None,
                             feature_hash=np.arange(n, dtype=np.uint64))
     by_score = {"aum": np.arange(n, dtype=float), "el2n": np.arange(n, dtype=float)[::-1]}
-    scores = SimpleNamespace(difficulty=by_score.__getitem__, suspects=lambda: None)
+    scores = SimpleNamespace(difficulty=by_score.__getitem__, suspects=lambda: None, locus=lambda: None)
     config = Config.model_validate({"input": {"path": "t.parquet", "label": "y"},
                                     "selection": {"strategy": "hardest", "fraction": 0.1, "class_floor": 0}})
     assert set(np.flatnonzero(select_frame(frame, scores, config).keep)) == set(range(180, 200))

@@ -5,7 +5,7 @@ Shared below the stages: the select stage writes the codes, the reports print th
 
 #: Reason code → its meaning.
 REASONS = {
-    "keep:stratum": "kept to fill its class's budget evenly across difficulty strata (stratified)",
+    "keep:stratum": "kept to fill its class's budget evenly across difficulty strata and, with spread, across the feature space (stratified)",
     "keep:hard": "kept as one of the hardest rows of its class (hardest)",
     "keep:easy": "kept as one of the easiest rows of its class (easiest)",
     "keep:random": "kept by a uniform random draw within its class (random)",

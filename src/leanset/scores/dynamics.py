@@ -230,6 +230,10 @@ class Scores:
         """Score ``name`` oriented so that higher means harder."""
         return DIFFICULTY_SIGN[name] * self.table[name].to_numpy(np.float64)
 
+    def locus(self) -> np.ndarray | None:
+        """``locus`` as int64, or None for scores saved without it."""
+        return self.table["locus"].to_numpy(np.int64) if "locus" in self.table else None
+
     def suspects(self) -> np.ndarray:
         """``suspect_label`` as a boolean array; rows without a verdict (null) count as not suspect."""
         return self.table["suspect_label"].fillna(False).to_numpy(bool)

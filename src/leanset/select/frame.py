@@ -26,4 +26,4 @@ def select_frame(frame, scores, config: Config, selection: SelectionConfig | Non
     return select_rows(scores.difficulty(selection.score)[rows], frame.groups[train], selection, config.seed,
                        suspect=None if suspect is None else suspect[rows],
                        segments=None if frame.segments is None else frame.segments[train], X=frame.feature_hash[train],
-                       locus=scores.table["locus"].to_numpy(np.int64)[rows] if "locus" in scores.table else None)
+                       locus=None if (locus := scores.locus()) is None else locus[rows])
