@@ -22,6 +22,7 @@ from sklearn.datasets import load_breast_cancer, load_diabetes, load_wine
 from leanset.scores import cluster, dynamics as scores, shards
 from leanset.config import ExecutionConfig, load_config
 from leanset.errors import ConfigError, InputError
+from leanset.load.split import deal_folds
 from leanset.models.proxy import n_checkpoints
 from leanset.scores.dynamics import residual_band
 from leanset.select.frame import select_frame
@@ -115,16 +116,16 @@ def test_replayed_checkpoints_give_single_machine_scores(tmp_path, loader, task)
         assert any(p.model.current_iteration() < pc.rounds for p in local.proxies)
     args = (len(frame.classes), T, pc.checkpoint_every, max(1, round(pc.el2n_at * T)),
             residual_band(y, pc) if task == "regression" else 0.0, [p.iterations for p in local.proxies])
-    replay = cluster.shard_scores(X, y, fold, models, *args)
+    replay = cluster.shard_scores(X, y, fold, models, *args, locus_seed=config.seed)
     for name in local.table.columns.drop("suspect_label"):
         np.testing.assert_allclose(replay[name].to_numpy(float), local.table[name].to_numpy(float), rtol=0, atol=1e-9,
                                    err_msg=name)
     # a shard whose rows all sit in fold 0 (fold 0's model never trained on them, the other models
     # predict none of them out of fold), and an empty shard
     first = np.flatnonzero(fold == 0)[:7]
-    pd.testing.assert_frame_equal(cluster.shard_scores(X[first], y[first], fold[first], models, *args),
+    pd.testing.assert_frame_equal(cluster.shard_scores(X[first], y[first], fold[first], models, *args, locus_seed=config.seed),
                                   replay.iloc[first].reset_index(drop=True))
-    assert len(cluster.shard_scores(X[:0], y[:0], fold[:0], models, *args)) == 0
+    assert len(cluster.shard_scores(X[:0], y[:0], fold[:0], models, *args, locus_seed=config.seed)) == 0
 
 
 @pytest.mark.xfail(strict=True, reason="data_parallel kept set overlaps the local one less than another fold split does with the cheap proxy (0.625 vs 0.685 - 0.05); open")
@@ -158,7 +159,7 @@ def test_dask_scores_agree_with_single_machine(setup, client, dask_scores):
     assert got.table["oof_loss"].mean() == pytest.approx(metrics.log_loss(y, proba), rel=1e-9)
 
     refold = frame.fold.copy()
-    refold[train] = scores._refold(frame.groups[train], config.proxy.folds, np.random.default_rng([config.seed, 0x2E9, 1]))
+    refold[train] = deal_folds(frame.groups[train], config.proxy.folds, np.random.default_rng([config.seed, 0x2E9, 1]))
     other_split = scores.score(dataclasses.replace(frame, fold=refold), config)
     keep_local = select_frame(frame, local, config).keep
     between_engines = metrics.jaccard_score(keep_local, select_frame(frame, got, config).keep)

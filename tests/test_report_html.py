@@ -178,7 +178,7 @@ def test_strata_edges_bound_every_stratum(run_dir):
     for c in view["classes"]:
         rows = m[(m.label == c["name"]) & (m.stratum >= 0)]
         lo, hi, width = c["span"]
-        bounds = np.linspace(lo, hi, run["config"]["selection"]["strata"] + 1)
+        bounds = np.linspace(lo, hi, run["selection"]["strata"] + 1)  # strata: auto, as the run resolved it
         assert np.allclose(width, np.diff(bounds)) and np.allclose(c["edges"], bounds[1:-1])
         difficulty = -rows[score] if score == "aum" else rows[score]  # aum: lower is harder (Pleiss et al., 2020)
         hard_lo = np.sort(-bounds if score == "aum" else bounds)

@@ -24,6 +24,7 @@ import leanset.scores.dynamics as scores_mod
 from leanset.config import Config, ProxyConfig, SCORE_NAMES, load_config
 from leanset.models.proxy import fit_gbdt, fit_linear, n_checkpoints, softmax
 from leanset.scores.dynamics import Dynamics, score
+from leanset.scores.locus import Locus, morton
 from leanset.load.table import load_table
 
 STATS = ("forgetting", "aum", "el2n", "confidence", "variability", "correctness", "aleatoric")
@@ -260,7 +261,7 @@ def test_streaming_statistics_equal_direct_computation(tmp_path, monkeypatch, ma
         "aleatoric": (py * (1 - py)).mean(axis=(1, 2)),
     }
     table = s.table
-    assert len(table) == n and list(table.columns) == [*SCORE_NAMES, "never_learned", "suspect_label"]
+    assert len(table) == n and list(table.columns) == [*SCORE_NAMES, "never_learned", "locus", "suspect_label"]
     assert table["suspect_label"].isna().all()  # proxy.threshold_samples is off here
     np.testing.assert_array_equal(table["never_learned"].to_numpy(), ~learned)
     for name in STATS:
@@ -448,7 +449,7 @@ def test_morton_interleaves_bits_hand_worked():
     # Morton (1966) Z-order: bit b of column j goes to bit b*d + j. Hand-worked for d = 2, 2 bits:
     # (1, 0) -> 0b01 = 1; (0, 1) -> 0b10 = 2; (2, 0) -> 0b0100 = 4; (3, 3) -> 0b1111 = 15.
     q = np.array([[1, 0], [0, 1], [2, 0], [3, 3]], np.int64)
-    assert scores_mod.morton(q, 2).tolist() == [1, 2, 4, 15]
+    assert morton(q, 2).tolist() == [1, 2, 4, 15]
 
 
 def test_locus_takes_feature_ranges_from_the_model_and_keeps_near_copies_together(tmp_path):
@@ -457,7 +458,7 @@ def test_locus_takes_feature_ranges_from_the_model_and_keeps_near_copies_togethe
     cfg, frame = _frame(tmp_path, _wine, PROXIES["gbdt"])
     s = score(frame, cfg)
     X = frame.X[frame.train]
-    key = scores_mod.Locus.from_booster(s.proxies[0].model, cfg.seed)
+    key = Locus.from_booster(s.proxies[0].model, cfg.seed)
     np.testing.assert_allclose(key.low, X.min(axis=0), rtol=1e-6)
     np.testing.assert_allclose(key.low + key.span, X.max(axis=0), rtol=1e-6)
     assert np.array_equal(s.table["locus"].to_numpy(), key(X))

@@ -472,7 +472,7 @@ def test_stabilise_never_keeps_a_filtered_row():
 def test_van_der_corput_is_scipys_unscrambled_halton_in_one_dimension():
     # scipy.stats.qmc.Halton(d=1, scramble=False) is the base-2 van der Corput sequence
     from scipy.stats import qmc
-    from leanset.select.rules import van_der_corput
+    from leanset.select.spread import van_der_corput
     np.testing.assert_allclose(van_der_corput(np.arange(64)), qmc.Halton(d=1, scramble=False).random(64).ravel())
 
 

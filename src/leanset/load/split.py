@@ -67,3 +67,13 @@ def validation_split(groups: np.ndarray, fraction: float, seed: int) -> tuple[np
         take = min(len(rows) - 1, max(1, int(round(fraction * len(rows))))) if len(rows) > 1 else 0
         slice_[rng.choice(rows, size=take, replace=False)] = True
     return np.flatnonzero(~slice_), np.flatnonzero(slice_)
+
+
+def deal_folds(groups: np.ndarray, folds: int, rng: np.random.Generator) -> np.ndarray:
+    """A fresh stratified fold assignment: within each group, a seeded shuffle dealt round-robin."""
+    order = np.lexsort((rng.random(len(groups)), groups))
+    counts = np.bincount(groups)
+    starts = np.repeat(np.concatenate(([0], np.cumsum(counts)[:-1])), counts)
+    fold = np.empty(len(groups), np.int8)
+    fold[order] = (np.arange(len(groups)) - starts) % folds
+    return fold

@@ -22,9 +22,10 @@ from ..difficulty import DIFFICULTY_SIGN
 from ..errors import LeansetError
 from ..reasons import REASONS
 from .coded import Coded
+from .wording import against_random_text
 from .charts import (Charts, bars_chart, calibration_name, churn_chart, cost_chart, frontier_chart, metrics_chart,
                      reasons_chart, scores_chart, verdict_chart)
-from .format import against_random_text, interval, number, seconds, share, signed
+from .format import interval, number, seconds, share, signed
 
 #: Section ids of report.html, in page order.
 SECTIONS = ("verdict", "metrics", "cost", "composition", "scores", "review", "churn", "frontier",

@@ -10,7 +10,7 @@ from rich import box
 from rich.table import Table
 from rich.text import Text
 
-from .format import against_random_text
+from .wording import against_random_text
 from .ledger import ledger_lines
 
 CAUTION = ("Pruning can hide harm to small groups and rare cases: check per-group metrics, keep a human "

@@ -42,8 +42,10 @@ from ..errors import ConfigError
 from ..models.proxy import FittedProxy, binned_dataset, class_rounds, fit_proxy, n_checkpoints, softmax
 from ..load.memory import release_memory
 from ..load.rows import RowFrame
+from ..load.split import deal_folds
 # scores/cluster.py imports these from here too
 from .labels import aum_cutoff, threshold_config, wants_threshold_samples  # noqa: F401
+from .locus import Locus
 
 logger = logging.getLogger(__name__)
 
@@ -200,7 +202,6 @@ def residual_band(y: np.ndarray, config: ProxyConfig) -> float:
     return float(np.quantile(np.abs(y - np.median(y)), config.residual_quantile))
 
 
-
 @dataclass
 class Scores:
     """Per-row scores of the training rows.
@@ -239,16 +240,6 @@ class Scores:
         return self.table["suspect_label"].fillna(False).to_numpy(bool)
 
 
-def _refold(groups: np.ndarray, folds: int, rng: np.random.Generator) -> np.ndarray:
-    """A fresh stratified fold assignment: within each group, a seeded shuffle dealt round-robin."""
-    order = np.lexsort((rng.random(len(groups)), groups))
-    counts = np.bincount(groups)
-    starts = np.repeat(np.concatenate(([0], np.cumsum(counts)[:-1])), counts)
-    fold = np.empty(len(groups), np.int8)
-    fold[order] = (np.arange(len(groups)) - starts) % folds
-    return fold
-
-
 def repeat_folds(frame: RowFrame, config: Config, r: int) -> tuple[np.ndarray, list[int]]:
     """Folds of the training rows and proxy seeds of cross-fitting pass ``r``: the load stage's
     folds and ``seed + k`` first, then fresh seeded folds and seeds."""
@@ -256,7 +247,7 @@ def repeat_folds(frame: RowFrame, config: Config, r: int) -> tuple[np.ndarray, l
     if r == 0:
         return frame.fold[train], [config.seed + k for k in range(config.proxy.folds)]
     rng = np.random.default_rng([config.seed, 0x2E9, r])
-    return _refold(frame.groups[train], config.proxy.folds, rng), [int(v) for v in rng.integers(2**31, size=config.proxy.folds)]
+    return deal_folds(frame.groups[train], config.proxy.folds, rng), [int(v) for v in rng.integers(2**31, size=config.proxy.folds)]
 
 
 def _cross_fit(frame: RowFrame, binned, rows, y, fold, n_classes, pc: ProxyConfig, seeds: list[int],
@@ -296,50 +287,6 @@ def _cross_fit(frame: RowFrame, binned, rows, y, fold, n_classes, pc: ProxyConfi
     out.update(oof_scores(oof, y, n_classes))
     out["locus"] = locus
     return out, proxies
-
-
-class Locus:
-    """A locality key per row: the Morton (Z-order) code of ``dims`` seeded random projections of the
-    features, each feature first scaled to [-0.5, 0.5] by its range.
-
-    Near-copies get equal or neighbouring keys, and rows next to each other in the key's order are
-    close in the projected space (Morton, 1966), so taking rows evenly along that order covers the
-    feature space. The ranges are a gbdt fold model's (LightGBM's ``feature_infos``), so the key is the
-    same however the rows are read.
-    """
-
-    BITS = 15  # levels per projection: 2**15, four projections in 60 bits
-
-    def __init__(self, low: np.ndarray, high: np.ndarray, seed: int, dims: int = 4):
-        self.low = np.nan_to_num(np.asarray(low, np.float64))
-        span = np.nan_to_num(np.asarray(high, np.float64)) - self.low
-        self.span = np.where(span > 0, span, 1.0)
-        self.dims = dims
-        self.W = np.random.default_rng([seed, 0x10C5]).standard_normal((len(self.low), dims)) / np.sqrt(max(len(self.low), 1))
-
-    @classmethod
-    def from_booster(cls, booster, seed: int) -> Locus:
-        """Ranges from the model's ``feature_infos`` (a feature LightGBM found constant gets range 0)."""
-        infos = booster.dump_model(num_iteration=1)["feature_infos"]
-        low = [infos[name].get("min_value", 0.0) if isinstance(infos.get(name), dict) else 0.0 for name in booster.feature_name()]
-        high = [infos[name].get("max_value", 0.0) if isinstance(infos.get(name), dict) else 0.0 for name in booster.feature_name()]
-        return cls(np.asarray(low, np.float64), np.asarray(high, np.float64), seed)
-
-    def __call__(self, X: np.ndarray) -> np.ndarray:
-        z = np.nan_to_num((np.asarray(X, np.float64) - self.low) / self.span - 0.5) @ self.W
-        q = np.clip(np.floor((z + 2.0) / 4.0 * 2**self.BITS), 0, 2**self.BITS - 1).astype(np.int64)
-        return morton(q, self.BITS)
-
-
-def morton(q: np.ndarray, bits: int) -> np.ndarray:
-    """Interleave the low ``bits`` bits of each column of the non-negative integers ``q`` (n, d): bit b
-    of column j goes to bit b·d + j of the code (Morton, 1966)."""
-    d = q.shape[1]
-    code = np.zeros(len(q), np.int64)
-    for b in range(bits):
-        for j in range(d):
-            code |= ((q[:, j] >> b) & 1) << (b * d + j)
-    return code
 
 
 def oof_scores(oof: np.ndarray, y: np.ndarray, n_classes: int) -> dict[str, np.ndarray]:

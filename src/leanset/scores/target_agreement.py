@@ -17,8 +17,9 @@ from scipy import stats
 
 from ..config import Config, TargetConfig
 from ..load.rows import RowFrame
+from ..load.split import deal_folds
 from ..models.target import LIGHTGBM_DEFAULTS, LIGHTGBM_ROUNDS, fit_target
-from .dynamics import Scores, _refold
+from .dynamics import Scores
 
 #: The most the agreement check raises the target's learning rate to (a leanset choice; common
 #: practice, no source: above it boosting steps overshoot).
@@ -67,7 +68,7 @@ def agreement(frame: RowFrame, scores: Scores, config: Config) -> dict | None:
     sample = np.sort(rng.choice(len(train), size=m, replace=False))
     rows = train[sample]
     X, y = frame.features(rows), frame.y[rows]
-    fold = _refold(frame.groups[rows], pc.agreement_folds, rng)
+    fold = deal_folds(frame.groups[rows], pc.agreement_folds, rng)
     n_classes = len(frame.classes)
     loss = np.empty(m)
     for k in range(pc.agreement_folds):
