@@ -500,13 +500,14 @@ def test_spread_takes_rows_evenly_along_the_locus_order():
 
 def test_strata_auto_is_one_bin_below_half_and_fifty_from_half():
     from leanset.select.rules import strata_count
-    assert strata_count(SelectionConfig(fraction=0.3)) == 1
-    assert strata_count(SelectionConfig(fraction=0.49)) == 1
-    assert strata_count(SelectionConfig(fraction=0.5)) == 50
+    assert strata_count(SelectionConfig(fraction=0.3, strata="auto")) == 1
+    assert strata_count(SelectionConfig(fraction=0.49, strata="auto")) == 1
+    assert strata_count(SelectionConfig(fraction=0.5, strata="auto")) == 50
     assert strata_count(SelectionConfig(fraction=0.3, strata=7)) == 7
+    assert strata_count(SelectionConfig(fraction=0.3)) == 50  # the default
     d = np.linspace(0, 1, 200)
     y = np.zeros(200, np.int32)
-    sel = select(d, y, SelectionConfig(fraction=0.3, class_floor=0), seed=0)
+    sel = select(d, y, SelectionConfig(fraction=0.3, strata="auto", class_floor=0), seed=0)
     assert sel.info["strata"] == 1 and set(sel.stratum) == {0}
-    sel = select(d, y, SelectionConfig(fraction=0.6, class_floor=0), seed=0)
+    sel = select(d, y, SelectionConfig(fraction=0.6, strata="auto", class_floor=0), seed=0)
     assert sel.info["strata"] == 50 and len(set(sel.stratum)) == 50

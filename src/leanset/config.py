@@ -115,14 +115,14 @@ class SelectionConfig(_Section):
     class_floor: int = Field(50, ge=0, description=(
         "Every class keeps at least min(n_c, class_floor) rows; if the floors exceed the budget, the budget grows"
         " and the summary says by how much."))
-    strata: Annotated[int, Field(ge=1)] | Literal["auto"] = Field("auto", description=(
-        "`stratified`: difficulty bins per class, or `auto`: one bin while less than half the rows are kept (the "
-        "rows are then taken for coverage of the feature space alone, see `spread`) and 50 from half on "
-        "(coverage-centric over difficulty); docs/selection.md."))
-    spread: bool = Field(True, description=(
+    strata: Annotated[int, Field(ge=1)] | Literal["auto"] = Field(50, description=(
+        "`stratified`: difficulty bins per class, or `auto`: one bin while less than half the rows are kept (rows "
+        "then taken for coverage of the feature space alone; use with `spread`) and 50 from half on; "
+        "docs/selection.md."))
+    spread: bool = Field(False, description=(
         "`stratified`: within a bin, take rows evenly along the score stage's locality key (score column `locus`), "
         "so the kept rows cover the feature space and near-copies are not kept twice before other rows once; "
-        "`false`: a uniform draw within each bin."))
+        "`false`: a uniform draw within each bin. Helps on tables of many near-copies (docs/selection.md)."))
     hard_cut: float = Field(0.0, ge=0, lt=1, description=(
         "`stratified`: hardest share of each class set aside first as likely label noise."))
     weights: Literal["class_prior", "none"] = Field("class_prior", description=(

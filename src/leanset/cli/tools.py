@@ -117,6 +117,24 @@ def bench_scale_command(
         fail(exc)
 
 
+SET_HELP = "A selection key to measure instead of its default, KEY=VALUE (YAML value); repeatable."
+
+
+def _selection_overrides(items: list[str]) -> dict:
+    """``--set KEY=VALUE`` options as selection keys (values read as YAML); a malformed one exits 2."""
+    import yaml
+
+    from ..errors import ConfigError
+
+    selection = {}
+    for item in items:
+        key, eq, value = item.partition("=")
+        if not eq:
+            fail(ConfigError(f"--set {item}: write it as KEY=VALUE, e.g. --set quotas=balanced"))
+        selection[key.strip().removeprefix("selection.")] = yaml.safe_load(value)
+    return selection
+
+
 @bench_app.command("economics")
 def bench_economics_command(
     rows: int = typer.Option(1_000_000, min=1000, help="Rows of the invented table."),
@@ -130,6 +148,7 @@ def bench_economics_command(
     random_repeats: int = typer.Option(1, min=1, help="verify.random_repeats."),
     dir: Optional[Path] = typer.Option(None, "--dir", help="Folder for the table, config and store (kept); default a temporary folder."),
     seed: int = typer.Option(0, help="Seed of the table and the run."),
+    set_: list[str] = typer.Option([], "--set", help=SET_HELP),
 ) -> None:
     """Whole pipeline (fraction auto) on an invented redundant table with an expensive target; the last line is end_to_end_speedup=…"""
     import tempfile
@@ -144,7 +163,8 @@ def bench_economics_command(
         try:
             table = write_economics_table(folder / f"table-{rows}-{features}-{classes}-{seed}", rows, features, classes,
                                           flip, copies, seed)
-            run_dir = prune_flow(str(economics_config(folder, table, rounds, leaves, threads, random_repeats, seed)))
+            run_dir = prune_flow(str(economics_config(folder, table, rounds, leaves, threads, random_repeats, seed,
+                                                      _selection_overrides(set_))))
         except LeansetError as exc:
             fail(exc)
         for line in economics_lines(read_run(run_dir), rows):
@@ -156,12 +176,10 @@ def bench_suite_command(
     quick: bool = typer.Option(False, "--quick", help="CI-sized invented tables (4,000 rows) and a 100-round target."),
     tables: Optional[str] = typer.Option(None, help="Only these suite tables, comma-separated."),
     rows: Optional[int] = typer.Option(None, min=500, help="Rows of the invented tables (default 200,000, or 4,000 with --quick)."),
-    set_: list[str] = typer.Option([], "--set", help="A selection key to measure instead of its default, KEY=VALUE (YAML value); repeatable."),
+    set_: list[str] = typer.Option([], "--set", help=SET_HELP),
     seed: int = typer.Option(0, help="seed (of the tables and the runs)."),
 ) -> None:
     """The default selection rule against same-size random subsets over a fixed list of tables; the last line is below_random=N above_mean=M points=P"""
-    import yaml
-
     from ..errors import ConfigError
     from ..tools.suite import TABLES, run_suite
 
@@ -169,14 +187,8 @@ def bench_suite_command(
     unknown = sorted(set(names or []) - {t.name for t in TABLES})
     if unknown:
         fail(ConfigError(f"--tables: unknown table {', '.join(unknown)}; choose from {', '.join(t.name for t in TABLES)}"))
-    selection = {}
-    for item in set_:
-        key, eq, value = item.partition("=")
-        if not eq:
-            fail(ConfigError(f"--set {item}: write it as KEY=VALUE, e.g. --set quotas=balanced"))
-        selection[key.strip().removeprefix("selection.")] = yaml.safe_load(value)
     try:
-        for line in run_suite(quick=quick, seed=seed, selection=selection, tables=names, rows=rows):
+        for line in run_suite(quick=quick, seed=seed, selection=_selection_overrides(set_), tables=names, rows=rows):
             typer.echo(line)
     except LeansetError as exc:
         fail(exc)

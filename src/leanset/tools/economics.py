@@ -95,11 +95,12 @@ def write_economics_table(out: Path, rows: int, features: int, classes: int, fli
 
 
 def economics_config(folder: Path, table: Path, rounds: int, leaves: int, threads: int, random_repeats: int,
-                     seed: int) -> Path:
-    """Write the run's config beside the table: ``fraction: auto`` and the expensive target."""
+                     seed: int, selection: dict[str, Any] | None = None) -> Path:
+    """Write the run's config beside the table: ``fraction: auto``, the expensive target, and any
+    ``selection`` keys that replace the defaults."""
     config = {
         "input": {"path": str(table), "label": "label"},
-        "selection": {"fraction": "auto", "quotas": "proportional"},
+        "selection": {"fraction": "auto", "quotas": "proportional", **(selection or {})},
         "target": {"params": {"num_boost_round": rounds, "num_leaves": leaves, "learning_rate": 0.05,
                               "num_threads": threads}},
         "verify": {"random_repeats": random_repeats},
