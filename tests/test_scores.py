@@ -261,7 +261,7 @@ def test_streaming_statistics_equal_direct_computation(tmp_path, monkeypatch, ma
         "aleatoric": (py * (1 - py)).mean(axis=(1, 2)),
     }
     table = s.table
-    assert len(table) == n and list(table.columns) == [*SCORE_NAMES, "never_learned", "locus", "suspect_label"]
+    assert len(table) == n and list(table.columns) == [*SCORE_NAMES, "never_learned", "suspect_label"]  # no locus: spread is off
     assert table["suspect_label"].isna().all()  # proxy.threshold_samples is off here
     np.testing.assert_array_equal(table["never_learned"].to_numpy(), ~learned)
     for name in STATS:
@@ -456,6 +456,7 @@ def test_locus_takes_feature_ranges_from_the_model_and_keeps_near_copies_togethe
     # LightGBM's model dump records each feature's min and max over the rows its bins were built
     # from (feature_infos): here all training rows, binned once; scikit-learn's wine table
     cfg, frame = _frame(tmp_path, _wine, PROXIES["gbdt"])
+    cfg = cfg.model_copy(update={"selection": cfg.selection.model_copy(update={"spread": True})})
     s = score(frame, cfg)
     X = frame.X[frame.train]
     key = Locus.from_booster(s.proxies[0].model, cfg.seed)
@@ -467,4 +468,7 @@ def test_locus_takes_feature_ranges_from_the_model_and_keeps_near_copies_togethe
     assert np.array_equal(key(X[::-1])[::-1], key(X))
     # the linear proxy has no ranges of its own: every row gets 0, and select falls back to a uniform order
     cfg, frame = _frame(tmp_path, _wine, PROXIES["linear"])
+    cfg = cfg.model_copy(update={"selection": cfg.selection.model_copy(update={"spread": True})})
     assert (score(frame, cfg).table["locus"] == 0).all()
+    # without spread no key is made (no column, no memory)
+    assert "locus" not in score(frame, cfg.model_copy(update={"selection": cfg.selection.model_copy(update={"spread": False})})).table

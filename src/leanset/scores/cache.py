@@ -79,6 +79,8 @@ def score_key(frame: RowFrame, config: Config) -> str:
         "proxy": data["proxy"],
         # with proxy.threshold_samples auto, whether the label-error passes run is a selection setting
         "threshold_samples": wants_threshold_samples(config),
+        # selection.spread asks the score stage for the locality key
+        "locus": config.selection.spread,
         "execution": {k: v for k, v in data["execution"].items() if k not in ("batch_rows", "feature_memory_mb")},
         "seed": config.seed,
         "versions": library_versions(),
@@ -117,7 +119,7 @@ def read_scores(folder: Path) -> Scores | None:
     except (OSError, KeyError, ValueError, pa.ArrowException) as exc:
         logger.warning("score cache %s unreadable (%s); scoring afresh", folder, exc)
         return None
-    if missing := {*SCORE_NAMES, "locus"} - set(table.column_names):
+    if missing := set(SCORE_NAMES) - set(table.column_names):
         logger.warning("score cache %s lacks %s (saved by an earlier version); scoring afresh", folder, sorted(missing))
         return None
     return Scores(table=table.to_pandas(), proxies=proxies, checkpoints=meta["checkpoints"], info=meta["info"])

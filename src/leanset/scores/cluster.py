@@ -48,8 +48,9 @@ from ..config import SCORE_NAMES, Config, ExecutionConfig, ProxyConfig, check_en
 from ..errors import ConfigError
 from ..models.proxy import (FittedProxy, binary_logits, binned_dataset, class_rounds, fit_proxy, gbdt_params, n_checkpoints,
                             proba_matrix)
-from .dynamics import (Dynamics, Locus, ResidualDynamics, Scores, aum_cutoff, margin, oof_scores, repeat_folds,
+from .dynamics import (Dynamics, ResidualDynamics, Scores, aum_cutoff, locus_seed, margin, oof_scores, repeat_folds,
                        residual_band, stability, threshold_config, wants_threshold_samples)
+from .locus import Locus
 from ..load.rows import RowFrame
 
 try:
@@ -225,13 +226,13 @@ def _every(T: int, every: int) -> tuple[int, ...]:
 
 def shard_scores(X: np.ndarray, y: np.ndarray, fold: np.ndarray, models: list[str], n_classes: int, T: int, every: int,
                  el2n_at: int, band: float, iterations: list[tuple[int, ...]] | None = None,
-                 locus_seed: int = 0) -> pd.DataFrame:
+                 locus_seed: int | None = None) -> pd.DataFrame:
     """Scores of one shard's rows from the fold models (model texts, fold order): a worker task.
 
     ``iterations`` holds each model's iterations at its ``T`` checkpoints, as its fit recorded them
     (``FittedProxy.iterations``); None when no fit dropped an iteration (``every``, 2 ``every``, …).
     Columns as :func:`leanset.scores.dynamics.score` computes them for one repeat, plus ``never_learned``
-    and ``locus`` (of the first model, projections seeded by ``locus_seed``).
+    and, unless ``locus_seed`` is None, ``locus`` (of the first model, projections seeded by ``locus_seed``).
     """
     n = len(y)
     locus = None
@@ -239,7 +240,7 @@ def shard_scores(X: np.ndarray, y: np.ndarray, fold: np.ndarray, models: list[st
     oof = np.empty((n, n_classes)) if n_classes else np.empty(n)
     for k, text in enumerate(models):
         booster = lgb.Booster(model_str=text)
-        if locus is None:
+        if locus is None and locus_seed is not None:
             locus = Locus.from_booster(booster, locus_seed)(X)
         fit_rows, out_rows = np.flatnonzero(fold != k), np.flatnonzero(fold == k)
         dyn.start_model(fit_rows)
@@ -252,7 +253,8 @@ def shard_scores(X: np.ndarray, y: np.ndarray, fold: np.ndarray, models: list[st
             oof[out_rows] = proba_matrix(pred) if n_classes else pred
     out = dyn.result(np.arange(n))
     out.update(oof_scores(oof, y, n_classes))
-    out["locus"] = locus
+    if locus is not None:
+        out["locus"] = locus
     return pd.DataFrame(out)
 
 
@@ -268,7 +270,7 @@ def shard_aum(X: np.ndarray, labels: np.ndarray, model: str, iterations: tuple[i
     return total / len(iterations)
 
 
-def _cross_fit(fitter: Fitter, y, fold, n_classes, pc: ProxyConfig, seeds, locus_seed: int) -> tuple[dict, list[FittedProxy]]:
+def _cross_fit(fitter: Fitter, y, fold, n_classes, pc: ProxyConfig, seeds, locus_seed: int | None) -> tuple[dict, list[FittedProxy]]:
     """One cross-fitting pass on the cluster: a fold model per fold, then every shard's scores."""
     T = n_checkpoints(pc)
     texts, iterations = zip(*fitter.fit([(fold != k, y, n_classes, seeds[k]) for k in range(pc.folds)]))
@@ -322,12 +324,13 @@ def _score(frame: RowFrame, config: Config, client: Client) -> Scores:
     runs, proxies = [], []
     for r in range(pc.repeats):
         fold, seeds = repeat_folds(frame, config, r)
-        out, models = _cross_fit(fitter, y, fold, n_classes, pc, seeds, config.seed)
+        out, models = _cross_fit(fitter, y, fold, n_classes, pc, seeds, locus_seed(config))
         runs.append(out)
         proxies = proxies or models
     table = pd.DataFrame({name: np.mean([o[name] for o in runs], axis=0) for name in SCORE_NAMES})
     table["never_learned"] = np.logical_and.reduce([o["never_learned"] for o in runs])
-    table["locus"] = runs[0]["locus"]
+    if "locus" in runs[0]:
+        table["locus"] = runs[0]["locus"]
     info: dict = {"repeats": pc.repeats, "stability": stability(runs) if pc.repeats > 1 else None, "dask_fits": fitter.choice}
     suspect = pd.array(np.full(len(y), pd.NA), dtype="boolean")
     if wants_threshold_samples(config) and n_classes:

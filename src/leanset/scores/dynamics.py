@@ -211,8 +211,8 @@ class Scores:
     table : pandas.DataFrame
         One row per training row, in ``frame.train`` order: a column per score in
         ``SCORE_NAMES``, ``never_learned``, ``suspect_label`` (nullable boolean: null when the
-        threshold-sample passes did not run) and ``locus`` (:class:`Locus` of the first repeat's
-        first fold model; 0 for the linear proxy).
+        threshold-sample passes did not run), and with ``selection.spread`` ``locus`` (:class:`Locus`
+        of the first repeat's first fold model; 0 for the linear proxy).
     proxies : list of FittedProxy
         The fold models of the first repeat, in fold order.
     checkpoints : int
@@ -250,10 +250,16 @@ def repeat_folds(frame: RowFrame, config: Config, r: int) -> tuple[np.ndarray, l
     return deal_folds(frame.groups[train], config.proxy.folds, rng), [int(v) for v in rng.integers(2**31, size=config.proxy.folds)]
 
 
+def locus_seed(config: Config) -> int | None:
+    """The seed of the locality key's projections, or None when ``selection.spread`` is off (no key is made)."""
+    return config.seed if config.selection.spread else None
+
+
 def _cross_fit(frame: RowFrame, binned, rows, y, fold, n_classes, pc: ProxyConfig, seeds: list[int],
-               locus_seed: int) -> tuple[dict, list[FittedProxy]]:
+               locus_seed: int | None) -> tuple[dict, list[FittedProxy]]:
     """One cross-fitting pass: in-fold dynamics and out-of-fold scores of the training rows ``rows``,
-    and their ``locus`` (:class:`Locus` of the first fold model, projections seeded by ``locus_seed``).
+    and, unless ``locus_seed`` is None, their ``locus`` (:class:`Locus` of the first fold model, projections
+    seeded by ``locus_seed``).
 
     The gbdt proxy trains on subsets of ``binned`` (the rows ``rows``, binned once); the linear proxy on
     copies of its fold's rows of ``frame.X``. Out-of-fold predictions take one pass over the
@@ -275,7 +281,7 @@ def _cross_fit(frame: RowFrame, binned, rows, y, fold, n_classes, pc: ProxyConfi
     dyn = None  # its running sums go before the out-of-fold pass allocates
     oof = np.empty((n, n_classes)) if n_classes else np.empty(n)
     locus = np.zeros(n, np.int64)
-    key = Locus.from_booster(proxies[0].model, locus_seed) if pc.family == "gbdt" else None
+    key = Locus.from_booster(proxies[0].model, locus_seed) if pc.family == "gbdt" and locus_seed is not None else None
     for start, X in frame.feature_batches(train_only=True):  # rows is frame.train, in order
         here = fold[start:start + len(X)]
         if key is not None:
@@ -285,7 +291,8 @@ def _cross_fit(frame: RowFrame, binned, rows, y, fold, n_classes, pc: ProxyConfi
             if len(pick):
                 oof[start + pick] = model.predict_proba(X[pick]) if n_classes else model.predict(X[pick])
     out.update(oof_scores(oof, y, n_classes))
-    out["locus"] = locus
+    if locus_seed is not None:
+        out["locus"] = locus
     return out, proxies
 
 
@@ -351,7 +358,7 @@ def score(frame: RowFrame, config: Config) -> Scores:
     runs, proxies = [], []
     for r in range(pc.repeats):
         fold, seeds = repeat_folds(frame, config, r)
-        out, models = _cross_fit(frame, binned, train, y, fold, n_classes, pc, seeds, config.seed)
+        out, models = _cross_fit(frame, binned, train, y, fold, n_classes, pc, seeds, locus_seed(config))
         runs.append(out)
         proxies = proxies or models
     del binned
@@ -359,7 +366,8 @@ def score(frame: RowFrame, config: Config) -> Scores:
     table = pd.DataFrame({name: runs[0][name] if len(runs) == 1 else np.mean([o[name] for o in runs], axis=0)
                           for name in SCORE_NAMES}, copy=False)
     table["never_learned"] = np.logical_and.reduce([o["never_learned"] for o in runs])
-    table["locus"] = runs[0]["locus"]
+    if "locus" in runs[0]:
+        table["locus"] = runs[0]["locus"]
     if pc.repeats > 1:
         info["stability"] = stability(runs)
     del runs
