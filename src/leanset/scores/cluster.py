@@ -48,9 +48,9 @@ from ..config import SCORE_NAMES, Config, ExecutionConfig, ProxyConfig, check_en
 from ..errors import ConfigError
 from ..models.proxy import (FittedProxy, binary_logits, binned_dataset, class_rounds, fit_proxy, gbdt_params, n_checkpoints,
                             proba_matrix)
-from .dynamics import (Dynamics, ResidualDynamics, Scores, aum_cutoff, locus_seed, margin, oof_scores, repeat_folds,
-                       residual_band, stability, threshold_config, wants_threshold_samples)
-from .locus import Locus
+from .dynamics import (Dynamics, ResidualDynamics, Scores, aum_cutoff, margin, oof_scores, repeat_folds, residual_band,
+                       stability, threshold_config, wants_threshold_samples)
+from .locus import Locus, locus_seed
 from ..load.rows import RowFrame
 
 try:

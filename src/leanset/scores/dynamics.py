@@ -45,7 +45,7 @@ from ..load.rows import RowFrame
 from ..load.split import deal_folds
 # scores/cluster.py imports these from here too
 from .labels import aum_cutoff, threshold_config, wants_threshold_samples  # noqa: F401
-from .locus import Locus
+from .locus import Locus, locus_seed
 
 logger = logging.getLogger(__name__)
 
@@ -248,11 +248,6 @@ def repeat_folds(frame: RowFrame, config: Config, r: int) -> tuple[np.ndarray, l
         return frame.fold[train], [config.seed + k for k in range(config.proxy.folds)]
     rng = np.random.default_rng([config.seed, 0x2E9, r])
     return deal_folds(frame.groups[train], config.proxy.folds, rng), [int(v) for v in rng.integers(2**31, size=config.proxy.folds)]
-
-
-def locus_seed(config: Config) -> int | None:
-    """The seed of the locality key's projections, or None when ``selection.spread`` is off (no key is made)."""
-    return config.seed if config.selection.spread else None
 
 
 def _cross_fit(frame: RowFrame, binned, rows, y, fold, n_classes, pc: ProxyConfig, seeds: list[int],

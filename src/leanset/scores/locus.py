@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..config import Config
+
 
 class Locus:
     """A locality key per row: the Morton (Z-order) code of ``dims`` seeded random projections of the
@@ -47,3 +49,8 @@ def morton(q: np.ndarray, bits: int) -> np.ndarray:
         for j in range(d):
             code |= ((q[:, j] >> b) & 1) << (b * d + j)
     return code
+
+
+def locus_seed(config: Config) -> int | None:
+    """The seed of the locality key's projections, or None when ``selection.spread`` is off (no key is made)."""
+    return config.seed if config.selection.spread else None
