@@ -275,8 +275,8 @@ def _cross_fit(frame: RowFrame, binned, rows, y, fold, n_classes, pc: ProxyConfi
     out = dyn.result(slice(None))
     dyn = None  # its running sums go before the out-of-fold pass allocates
     oof = np.empty((n, n_classes)) if n_classes else np.empty(n)
-    locus = np.zeros(n, np.int64)
-    key = Locus.from_booster(proxies[0].model, locus_seed) if pc.family == "gbdt" and locus_seed is not None else None
+    locus = None if locus_seed is None else np.zeros(n, np.int64)  # the linear proxy keeps the zeros
+    key = Locus.from_booster(proxies[0].model, locus_seed) if pc.family == "gbdt" and locus is not None else None
     for start, X in frame.feature_batches(train_only=True):  # rows is frame.train, in order
         here = fold[start:start + len(X)]
         if key is not None:
@@ -286,7 +286,7 @@ def _cross_fit(frame: RowFrame, binned, rows, y, fold, n_classes, pc: ProxyConfi
             if len(pick):
                 oof[start + pick] = model.predict_proba(X[pick]) if n_classes else model.predict(X[pick])
     out.update(oof_scores(oof, y, n_classes))
-    if locus_seed is not None:
+    if locus is not None:
         out["locus"] = locus
     return out, proxies
 

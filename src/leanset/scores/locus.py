@@ -30,9 +30,9 @@ class Locus:
     def from_booster(cls, booster, seed: int) -> Locus:
         """Ranges from the model's ``feature_infos`` (a feature LightGBM found constant gets range 0)."""
         infos = booster.dump_model(num_iteration=1)["feature_infos"]
-        low = [infos[name].get("min_value", 0.0) if isinstance(infos.get(name), dict) else 0.0 for name in booster.feature_name()]
-        high = [infos[name].get("max_value", 0.0) if isinstance(infos.get(name), dict) else 0.0 for name in booster.feature_name()]
-        return cls(np.asarray(low, np.float64), np.asarray(high, np.float64), seed)
+        ranges = [infos.get(name) if isinstance(infos.get(name), dict) else {} for name in booster.feature_name()]
+        return cls(np.array([r.get("min_value", 0.0) for r in ranges], np.float64),
+                   np.array([r.get("max_value", 0.0) for r in ranges], np.float64), seed)
 
     def __call__(self, X: np.ndarray) -> np.ndarray:
         z = np.nan_to_num((np.asarray(X, np.float64) - self.low) / self.span - 0.5) @ self.W
