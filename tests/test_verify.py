@@ -17,8 +17,8 @@ import numpy as np
 import pytest
 from scipy import stats
 from sklearn import metrics
-from sklearn.datasets import load_breast_cancer, load_digits, load_wine
-from sklearn.linear_model import LogisticRegression
+from sklearn.datasets import load_breast_cancer, load_diabetes, load_digits, load_wine
+from sklearn.linear_model import LogisticRegression, Ridge
 from sklearn.model_selection import train_test_split
 
 from leanset.config import SelectionConfig, TargetConfig, VerifyConfig
@@ -178,6 +178,26 @@ def test_resampled_roc_auc_equals_sklearn_on_every_resample():
         assert fast(i) == pytest.approx(metrics.roc_auc_score(y_te[i], p1[i]), abs=1e-12)
     assert np.isnan(fast(np.flatnonzero(y_te == 1)))  # one class only: undefined, as sklearn refuses it
     assert resampled_metric("accuracy", y_te, proba)(i) == metrics.accuracy_score(y_te[i], proba[i].argmax(axis=1))
+
+
+def test_resampled_row_mean_metrics_equal_sklearn_on_every_resample():
+    # The per-row fast path against sklearn.metrics on the resampled rows: a logistic regression's
+    # probabilities on scikit-learn's wine (3 classes) for accuracy and log loss, and a ridge
+    # regression's predictions on scikit-learn's diabetes for RMSE and MAE.
+    X, y = load_wine(return_X_y=True)
+    proba = LogisticRegression(max_iter=5000).fit(X[::2], y[::2]).predict_proba(X[1::2])
+    yt = y[1::2]
+    Xd, yd = load_diabetes(return_X_y=True)
+    pred = Ridge().fit(Xd[::2], yd[::2]).predict(Xd[1::2])
+    yr = yd[1::2]
+    rng = np.random.default_rng(5)
+    for _ in range(20):
+        i = rng.integers(0, len(yt), len(yt))
+        assert resampled_metric("accuracy", yt, proba)(i) == pytest.approx(metrics.accuracy_score(yt[i], proba[i].argmax(axis=1)), abs=1e-12)
+        assert resampled_metric("log_loss", yt, proba)(i) == pytest.approx(metrics.log_loss(yt[i], proba[i], labels=[0, 1, 2]), abs=1e-12)
+        j = rng.integers(0, len(yr), len(yr))
+        assert resampled_metric("rmse", yr, pred)(j) == pytest.approx(np.sqrt(metrics.mean_squared_error(yr[j], pred[j])), abs=1e-9)
+        assert resampled_metric("mae", yr, pred)(j) == pytest.approx(metrics.mean_absolute_error(yr[j], pred[j]), abs=1e-9)
 
 
 # ---------------------------------------------------------------- McNemar vs scipy.stats.binomtest
