@@ -44,6 +44,10 @@ def test_suite_prints_every_point_and_counts_them(tmp_path):
         above += is_above
     assert lines[-1] == f"below_random={below} above_mean={above} points=4"
 
+    # tables run in separate processes print the same blocks, in table order
+    assert list(run_suite(quick=True, tables=["wine", "noisy"], rows=600, grid=[0.2, 0.5], folder=tmp_path / "jobs",
+                          jobs=2)) == lines
+
 
 def test_bench_suite_refuses_an_unknown_table():
     result = CliRunner().invoke(app, ["bench", "suite", "--quick", "--tables", "wine,nope"])

@@ -178,6 +178,7 @@ def bench_suite_command(
     rows: Optional[int] = typer.Option(None, min=500, help="Rows of the invented tables (default 200,000, or 4,000 with --quick)."),
     set_: list[str] = typer.Option([], "--set", help=SET_HELP),
     seed: int = typer.Option(0, help="seed (of the tables and the runs)."),
+    jobs: int = typer.Option(1, min=1, help="Tables run at once, one process and one thread each (2 on a 2-core machine)."),
 ) -> None:
     """The default selection rule against same-size random subsets over a fixed list of tables; the last line is below_random=N above_mean=M points=P"""
     from ..errors import ConfigError
@@ -188,7 +189,8 @@ def bench_suite_command(
     if unknown:
         fail(ConfigError(f"--tables: unknown table {', '.join(unknown)}; choose from {', '.join(t.name for t in TABLES)}"))
     try:
-        for line in run_suite(quick=quick, seed=seed, selection=_selection_overrides(set_), tables=names, rows=rows):
+        for line in run_suite(quick=quick, seed=seed, selection=_selection_overrides(set_), tables=names, rows=rows,
+                              jobs=jobs):
             typer.echo(line)
     except LeansetError as exc:
         fail(exc)

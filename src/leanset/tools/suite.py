@@ -16,8 +16,10 @@ categorical with ordered overlapping classes, regression), of ``FULL_ROWS`` rows
 
 from __future__ import annotations
 
+import multiprocessing
 import tempfile
 from collections.abc import Callable, Iterator
+from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -224,8 +226,21 @@ def totals(points: list[dict]) -> str:
             f"points={len(points)}")
 
 
+def _run_one(name: str, quick: bool, seed: int, selection: dict[str, Any], grid, rows: int, where: Path) -> tuple[list[str], list[dict]]:
+    """One table of the suite: written to ``where``, run, and its printed block and points."""
+    t = next(t for t in TABLES if t.name == name)
+    make = (lambda r, s: many_classes(r, s, 12)) if quick and t.name == "many_classes" else t.make
+    df = make(rows, seed)
+    path = where / f"{t.name}.parquet"
+    df.to_parquet(path, index=False)
+    tolerance = t.tolerance if t.tolerance is not None else round(0.02 * float(df["label"].std()), 4)
+    config = suite_config(path, t, quick, seed, selection, tolerance)
+    points = run_table(t, config, grid, hardest_from=0.5 if t.name == "many_classes" else None)
+    return table_lines(points, len(df)), points
+
+
 def run_suite(quick: bool = False, seed: int = 0, selection: dict[str, Any] | None = None, tables: list[str] | None = None,
-              grid=DEFAULT_GRID, rows: int | None = None, folder: Path | None = None) -> Iterator[str]:
+              grid=DEFAULT_GRID, rows: int | None = None, folder: Path | None = None, jobs: int = 1) -> Iterator[str]:
     """Yield the suite's printed lines, table by table, then :func:`totals`.
 
     Parameters
@@ -242,21 +257,26 @@ def run_suite(quick: bool = False, seed: int = 0, selection: dict[str, Any] | No
         Rows of the invented tables, replacing the quick or full size.
     folder : Path, optional
         Where the tables are written as parquet; a temporary folder by default.
+    jobs : int
+        Tables run at once, each in its own process with one thread (the blocks print in table order).
     """
-    chosen = [t for t in TABLES if tables is None or t.name in tables]
+    chosen = [t.name for t in TABLES if tables is None or t.name in tables]
     n = rows or (QUICK_ROWS if quick else FULL_ROWS)
     all_points: list[dict] = []
     with tempfile.TemporaryDirectory(prefix="leanset-suite-") as tmp:
         where = Path(folder or tmp)
         where.mkdir(parents=True, exist_ok=True)
-        for t in chosen:
-            make = (lambda r, s: many_classes(r, s, 12)) if quick and t.name == "many_classes" else t.make
-            df = make(n, seed)
-            path = where / f"{t.name}.parquet"
-            df.to_parquet(path, index=False)
-            tolerance = t.tolerance if t.tolerance is not None else round(0.02 * float(df["label"].std()), 4)
-            config = suite_config(path, t, quick, seed, selection or {}, tolerance)
-            points = run_table(t, config, grid, hardest_from=0.5 if t.name == "many_classes" else None)
-            all_points += points
-            yield from table_lines(points, len(df))
+        args = [(name, quick, seed, selection or {}, grid, n, where) for name in chosen]
+        if jobs > 1:
+            # spawned, not forked: a forked child can hang in LightGBM's OpenMP runtime
+            with ProcessPoolExecutor(jobs, mp_context=multiprocessing.get_context("spawn")) as pool:
+                blocks = pool.map(_run_one, *zip(*args))
+                for lines, points in blocks:
+                    all_points += points
+                    yield from lines
+        else:
+            for a in args:
+                lines, points = _run_one(*a)
+                all_points += points
+                yield from lines
     yield totals(all_points)
