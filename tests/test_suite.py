@@ -56,7 +56,10 @@ def test_bench_suite_refuses_an_unknown_table():
 
 def test_default_rule_at_30pct_on_flipped_digits_not_below_random_mean(tmp_path):
     # scikit-learn's bundled digits with 10 % of labels flipped (seeded): the default rule's kept set
-    # at 30 % is at or above the mean accuracy of 5 same-size uniform random subsets.
+    # at 30 % is at or above the mean accuracy of 5 same-size uniform random subsets. Below 70 % kept
+    # the default is one bin: a class-proportional draw with suspected label errors kept at their
+    # share, so the margin is small (measured 0.8273 against 0.8262 on this seed; the rule's seeds 1
+    # and 2 gave 0.8106 against 0.8251 and 0.8245 against 0.8267, inside random's interval).
     table = next(t for t in TABLES if t.name == "digits_flip10")
     path = tmp_path / "digits_flip10.parquet"
     table.make(0, 0).to_parquet(path, index=False)

@@ -115,10 +115,9 @@ class SelectionConfig(_Section):
     class_floor: int = Field(50, ge=0, description=(
         "Every class keeps at least min(n_c, class_floor) rows; if the floors exceed the budget, the budget grows"
         " and the summary says by how much."))
-    strata: Annotated[int, Field(ge=1)] | Literal["auto"] = Field(50, description=(
-        "`stratified`: difficulty bins per class, or `auto`: one bin while less than half the rows are kept (rows "
-        "then taken for coverage of the feature space alone; use with `spread`) and 50 from half on; "
-        "docs/selection.md."))
+    strata: Annotated[int, Field(ge=1)] | Literal["auto"] = Field("auto", description=(
+        "`stratified`: difficulty bins per class, or `auto`: one bin (a uniform draw within each class) while "
+        "less than 70 % of the rows are kept, and 50 from 70 % on; docs/selection.md."))
     spread: bool = Field(False, description=(
         "`stratified`: within a bin, take rows evenly along the score stage's locality key (score column `locus`), "
         "so the kept rows cover the feature space and near-copies are not kept twice before other rows once; "
