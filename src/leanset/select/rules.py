@@ -10,8 +10,9 @@ rows of its order. Strategies:
   difficulty into ``strata`` equal-width bins, and the budget is filled evenly across bins, so a
   small bin keeps all its rows and what it leaves goes to the larger ones. With ``spread``, a
   bin's rows are taken evenly along the score stage's locality key (``locus``) rather than
-  uniformly, so they cover the feature space; ``strata: auto`` uses one bin below half the rows
-  kept (coverage of the feature space alone) and 50 from half on (:func:`strata_count`).
+  uniformly, so they cover the feature space; ``strata: auto`` (the default) uses one bin below
+  70 % of the rows kept (a uniform draw, or with ``spread`` coverage of the feature space alone)
+  and 50 from 70 % on (:func:`strata_count`).
 - ``random``: uniform, the baseline.
 - ``importance``: importance sampling with Horvitz–Thompson weights. Each row of a class is
   drawn with inclusion probability π_i ∝ 1 + t·(2 r_i − 1), capped at 1 and summing to the
